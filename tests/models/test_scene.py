@@ -134,8 +134,9 @@ def test_palette_image_reads_as_its_colours(tmp_path):
         Image.open(root / f"images/{i}.png").quantize(16).save(root / f"images/{i}.png")
     scene = load_scene(root, resolution=16)
     # reference: Pillow's palette lookup
-    ref = np.asarray(Image.open(root / "images/4.png").convert("RGB"), dtype=np.float32) / 255
-    assert Image.open(root / "images/4.png").mode == "P"
+    with Image.open(root / "images/4.png") as img:
+        assert img.mode == "P"
+        ref = np.asarray(img.convert("RGB"), dtype=np.float32) / 255
     assert scene.channels == 3 and np.array_equal(scene.images[4], ref)
 
 
