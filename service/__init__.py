@@ -1,0 +1,1 @@
+"""geotween's serving side: registry, API, jobs, client, CLI."""
