@@ -1,0 +1,1 @@
+"""geotween's learning side: scenes, renderer, networks, training, bundles and latent geometry."""
