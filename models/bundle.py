@@ -1,0 +1,138 @@
+"""Model bundles: one self-describing folder, loadable with nothing else.
+
+    manifest.json  format, name, created, content hash, model and training config, settings space
+                   (names, units, ranges, periodic flags), resolution, channels, settings spacing,
+                   training metrics, confidence model (or null)
+    weights.pt     state dict of encoder, decoder and heads (torch.load(..., weights_only=True))
+    bank.npz       codes, params and 8-bit images of every training sample (the bank), and the same
+                   for the held-out share, which is never in the bank
+
+The content hash is a SHA-256 over the weights' tensors, the arrays and the manifest's fields
+other than metrics and creation time: it names what the model computes, not the file encoding
+or how long training took.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from .nets import Autoencoder, ModelConfig
+from .params import ParamSpace
+from .train import TrainConfig
+
+FORMAT = "geotween-bundle/1"
+MANIFEST, WEIGHTS, BANK = "manifest.json", "weights.pt", "bank.npz"
+BANK_ARRAYS = ("codes", "params", "images", "holdout_codes", "holdout_params", "holdout_images")
+
+
+class BundleError(ValueError):
+    """A bundle folder that is missing, incomplete or of an unknown format."""
+
+
+@dataclass
+class Bundle:
+    manifest: dict
+    model: Autoencoder
+    space: ParamSpace
+    arrays: dict[str, np.ndarray]
+
+    @property
+    def codes(self) -> np.ndarray:
+        return self.arrays["codes"]
+
+    @property
+    def params(self) -> np.ndarray:
+        return self.arrays["params"]
+
+    @property
+    def scale(self) -> np.ndarray:
+        return np.asarray(self.manifest["scale"], dtype=np.float64)
+
+    @property
+    def resolution(self) -> int:
+        return int(self.manifest["resolution"])
+
+    @property
+    def channels(self) -> int:
+        return int(self.manifest["channels"])
+
+    def images(self, which: str = "images") -> np.ndarray:
+        """Bank (or held-out) images as float32 (N, H, W, C) in [0, 1]."""
+        return self.arrays[which].astype(np.float32) / 255.0
+
+
+def _to_uint8(images: np.ndarray) -> np.ndarray:
+    return np.round(np.clip(images, 0.0, 1.0) * 255.0).astype(np.uint8)
+
+
+def content_hash(state: dict[str, torch.Tensor], arrays: dict[str, np.ndarray], manifest: dict) -> str:
+    h = hashlib.sha256()
+    for key in sorted(state):
+        h.update(key.encode())
+        h.update(state[key].detach().cpu().contiguous().numpy().tobytes())
+    for key in sorted(arrays):
+        a = np.ascontiguousarray(arrays[key])
+        h.update(f"{key}:{a.dtype.str}:{a.shape}".encode())
+        h.update(a.tobytes())
+    rest = {k: v for k, v in manifest.items() if k not in ("hash", "created", "metrics")}
+    h.update(json.dumps(rest, sort_keys=True).encode())
+    return h.hexdigest()
+
+
+def save_bundle(out: str | Path, *, name: str, model: Autoencoder, model_config: ModelConfig,
+                train_config: TrainConfig, space: ParamSpace, scale: np.ndarray, arrays: dict[str, np.ndarray],
+                metrics: dict, confidence: dict | None = None, extra: dict | None = None) -> dict:
+    """Write a bundle folder (created if needed); returns the manifest. Images are float in [0, 1]."""
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    missing = [k for k in BANK_ARRAYS if k not in arrays]
+    if missing:
+        raise BundleError(f"bundle arrays missing: {missing}")
+    stored = {k: (_to_uint8(v) if "images" in k else np.asarray(v, dtype=np.float64)) for k, v in arrays.items()}
+    state = {k: v.detach().clone() for k, v in model.state_dict().items()}
+    manifest = {
+        "format": FORMAT, "name": name, "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "model_config": model_config.to_dict(), "train_config": train_config.to_dict(),
+        "space": space.to_list(), "resolution": model_config.resolution, "channels": model_config.channels,
+        "scale": [float(s) for s in scale], "bank_size": int(len(stored["codes"])),
+        "holdout_size": int(len(stored["holdout_codes"])), "metrics": metrics, "confidence": confidence,
+        **(extra or {}),
+    }
+    manifest["hash"] = content_hash(state, stored, manifest)
+    torch.save(state, out / WEIGHTS)
+    np.savez(out / BANK, **stored)
+    (out / MANIFEST).write_text(json.dumps(manifest, indent=1))
+    return manifest
+
+
+def read_manifest(path: str | Path) -> dict:
+    path = Path(path)
+    try:
+        manifest = json.loads((path / MANIFEST).read_text())
+    except FileNotFoundError:
+        raise BundleError(f"{path}: no {MANIFEST}; not a model bundle") from None
+    except json.JSONDecodeError as exc:
+        raise BundleError(f"{path / MANIFEST}: not valid JSON ({exc})") from None
+    if manifest.get("format") != FORMAT:
+        raise BundleError(f"{path}: unknown bundle format {manifest.get('format')!r}; expected {FORMAT!r}")
+    return manifest
+
+
+def load_bundle(path: str | Path) -> Bundle:
+    path = Path(path)
+    manifest = read_manifest(path)
+    for f in (WEIGHTS, BANK):
+        if not (path / f).is_file():
+            raise BundleError(f"{path}: {f} is missing")
+    model = Autoencoder(ModelConfig.from_dict(manifest["model_config"]))
+    model.load_state_dict(torch.load(path / WEIGHTS, weights_only=True, map_location="cpu"))
+    model.eval()
+    with np.load(path / BANK, allow_pickle=False) as z:
+        arrays = {k: z[k] for k in z.files}
+    return Bundle(manifest, model, ParamSpace.from_list(manifest["space"]), arrays)

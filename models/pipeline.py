@@ -1,0 +1,43 @@
+"""Scene to bundle: train, encode the bank, calibrate confidence, write the bundle folder."""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+from typing import Callable, TextIO
+
+import numpy as np
+
+from .bundle import save_bundle
+from .nets import ModelConfig
+from .scene import Scene
+from .train import TrainConfig, TrainResult, encode, train
+
+
+def bank_arrays(result: TrainResult, scene: Scene) -> dict[str, np.ndarray]:
+    """Codes, settings and images of the training samples (the bank) and of the held-out share."""
+    out = {}
+    for prefix, idx in (("", result.train_idx), ("holdout_", result.holdout_idx)):
+        # the bank keeps 8-bit images; encode exactly what it keeps so codes and images agree
+        images = np.round(np.clip(scene.images[idx], 0.0, 1.0) * 255.0).astype(np.float32) / 255.0
+        out[prefix + "codes"] = encode(result.model, images)
+        out[prefix + "params"] = scene.params[idx]
+        out[prefix + "images"] = images
+    return out
+
+
+def train_bundle(scene: Scene, out: str | Path, *, name: str, model_config: ModelConfig | None = None,
+                 train_config: TrainConfig | None = None, progress: TextIO | None = sys.stderr,
+                 on_step: Callable[[int, int], None] | None = None, calibrate: bool = False) -> dict:
+    """Train on `scene` and write a complete bundle to `out`; returns the manifest."""
+    result = train(scene, model_config, train_config, progress=progress, on_step=on_step)
+    arrays = bank_arrays(result, scene)
+    confidence = None
+    metrics = dict(result.metrics)
+    if calibrate:
+        from .calibrate import calibrate_bundle_confidence
+        confidence, report = calibrate_bundle_confidence(result, scene, arrays)
+        metrics["confidence"] = report
+    return save_bundle(out, name=name, model=result.model, model_config=result.model_config,
+                       train_config=result.train_config, space=scene.space, scale=result.scale,
+                       arrays=arrays, metrics=metrics, confidence=confidence,
+                       extra={"scene": scene.name})
