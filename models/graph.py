@@ -1,0 +1,473 @@
+"""Nearest-neighbour graph of latent codes, with short-circuit pruning, and shortest paths on it.
+
+Codes are rows of an (N, d) array, in latent units. An edge weighs its code distance: Euclidean, or
+sqrt(dz^T M dz) under a positive definite (d, d) metric M. A metric is applied by warping the codes
+with the Cholesky factor of M (M = L L^T, warped = codes @ L): plain Euclidean distance between
+warped codes is the metric distance, so the kd-tree, the weights and the A* bound all use it.
+"""
+from __future__ import annotations
+
+import heapq
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import sparse
+from scipy.sparse import csgraph
+from scipy.spatial import cKDTree
+
+from models.params import Parameter, ParamSpace
+
+# Zero-length edges (duplicate codes) must stay stored: sparse arithmetic drops explicit zeros.
+_TINY = np.finfo(np.float64).tiny
+_BLOCK = 32  # codes per bounding ball when selecting a search corridor; tuning only
+
+
+@dataclass(eq=False)  # arrays inside: compare graphs by identity
+class LatentGraph:
+    """Symmetric weighted graph over bank codes; treat as immutable once built.
+
+    Every edge must weigh at least the code distance between its ends (build_graph's edges do): the
+    searches rely on it, and a graph built by hand is checked for it.
+    """
+
+    codes: np.ndarray                    # (N, d) latent codes
+    adjacency: sparse.csr_matrix         # (N, N) symmetric, weight = code distance
+    k: int = 0                           # neighbours per node used to build it
+    pruned: int = 0                      # short-circuit edges removed
+    components: int = 1                  # connected pieces before bridging
+    bridges: int = 0                     # edges added to join those pieces
+    restored: int = 0                    # flagged edges kept because removing them would disconnect
+    metric: np.ndarray | None = None     # (d, d) positive definite, or None for Euclidean
+    tree: cKDTree | None = field(default=None, repr=False)       # kd-tree over `warped`
+    warped: np.ndarray | None = field(default=None, repr=False)  # (N, d) codes @ L
+    _cache: dict = field(default_factory=dict, init=False, repr=False)
+
+    def __post_init__(self):
+        self.codes = np.ascontiguousarray(self.codes, dtype=np.float64)
+        if self.warped is None:
+            self.warped = self.warp(self.codes)
+        if self.tree is None:
+            self.tree = cKDTree(self.warped)
+        self.adjacency = a = sparse.csr_matrix(self.adjacency, dtype=np.float64)
+        n = len(self.codes)
+        if a.shape == (n, n):
+            diff = self.warped[np.repeat(np.arange(n), np.diff(a.indptr))] - self.warped[a.indices]
+            short = a.data < np.sqrt(np.sum(diff * diff, axis=1)) * (1 - 1e-12)
+        if a.shape != (n, n) or np.any(short):
+            raise ValueError(f"adjacency: shape {a.shape} or weights below code distance not allowed; "
+                             f"expected ({n}, {n}), weight >= code distance")
+
+    def __len__(self) -> int:
+        return len(self.codes)
+
+    def warp(self, z) -> np.ndarray:
+        """(..., d) codes into the space where the metric is Euclidean."""
+        chol = _cholesky(self.metric, self.codes.shape[1])
+        z = np.asarray(z, dtype=np.float64)
+        return z if chol is None else np.ascontiguousarray(z @ chol)
+
+    def cached(self, name: str, make):
+        if name not in self._cache:
+            self._cache[name] = make()
+        return self._cache[name]
+
+
+# -- building ----------------------------------------------------------------------------------
+def build_graph(codes, *, k=None, params=None, space=None, param_scale=None, images=None,
+                max_param_ratio=3.0, max_image_ratio=3.0, metric=None,
+                k_min=None, k_max=32) -> LatentGraph:
+    """Symmetric kNN graph of `codes` (N, d) with short-circuit edges pruned.
+
+    k rule (k=None): try k = max(4, 2d) (or k_min) up to k_max, both capped at N - 1, and take the
+    smallest k whose pruned graph is connected. Failing that, the smallest k whose unpruned graph is
+    connected, keeping the shortest flagged edges that reconnect it (`restored`). Failing that, k_max,
+    with each extra component bridged to the largest by its shortest code-space edge (`bridges`).
+    A given k gets the same restoring and bridging, so the result is always connected.
+
+    Short-circuit rule: an edge of code length c spans a true length g: the settings distance in
+    units of `param_scale` (periodic axes on the short arc), or the RMS pixel difference. At each
+    end e, rho_e is the median of g / c over e's edges (truth per code length) and m_e the median
+    of g. The edge is a short-circuit if at either end g > ratio * rho_e * c (far more truth than
+    its code length buys there) and g > ratio * m_e (longer in truth than that end's edges; without
+    this, near-duplicate codes make g / c explode though they are no shortcut).
+
+    params (N, P) settings, with `space` a ParamSpace (default: non-periodic axes over the data's
+    range) and param_scale (P,) the typical spacing per axis (default space.spacing(params));
+    images (N, ...) pixels; metric (d, d) positive definite.
+    """
+    codes = np.ascontiguousarray(codes, dtype=np.float64)
+    if codes.ndim != 2 or len(codes) < 2 or codes.shape[1] < 1 or not np.all(np.isfinite(codes)):
+        raise ValueError(f"codes: shape {codes.shape} not allowed; expected finite (N, d), N >= 2")
+    n, d = codes.shape
+    graph = LatentGraph(codes=codes, adjacency=sparse.csr_matrix((n, n)), metric=metric)
+    warped = graph.warped
+    truths = _truths(n, params, space, param_scale, images, max_param_ratio, max_image_ratio)
+    if k is None:
+        k_hi = min(_int(k_max, "k_max", 1), n - 1)
+        k_lo = min(max(4, 2 * d) if k_min is None else _int(k_min, "k_min", 1), k_hi)
+        candidates = range(k_lo, k_hi + 1)
+    else:
+        candidates = [_int(k, "k", 1, n - 1)]
+
+    _, idx = graph.tree.query(warped, k=max(candidates) + 1)
+    idx = _drop_self(idx)
+    chosen = fallback = None
+    for kk in candidates:
+        u, v, w = _knn_edges(warped, idx[:, :kk])
+        flagged = np.zeros(len(u), dtype=bool)
+        for truth_of, ratio in truths:
+            flagged |= _short_circuits(n, u, v, w, truth_of(u, v), ratio)
+        trial = (kk, u, v, w, flagged)
+        if _components(n, u[~flagged], v[~flagged])[0] == 1:
+            chosen = trial
+            break
+        if fallback is None and _components(n, u, v)[0] == 1:
+            fallback = trial
+    kk, u, v, w, flagged = chosen or fallback or trial
+
+    keep, restored = _restore(n, u, v, w, flagged)
+    u, v, w = u[keep], v[keep], w[keep]
+    n_comp, labels = _components(n, u, v)
+    if n_comp > 1:
+        bu, bv = _bridges(warped, labels, n_comp)
+        u, v, w = np.r_[u, bu], np.r_[v, bv], np.r_[w, _lengths(warped, bu, bv)]
+    graph.adjacency = _symmetric(n, u, v, w)
+    graph.k, graph.pruned, graph.restored = kk, int(flagged.sum()) - restored, restored
+    graph.components, graph.bridges = n_comp, n_comp - 1
+    return graph
+
+
+def _int(value, name: str, lo: int, hi: float = math.inf) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not lo <= value <= hi:
+        raise ValueError(f"{name}: {value!r} is out of range; allowed integers {lo} <= {name} <= {hi}")
+    return int(value)
+
+
+def _cholesky(metric, d: int) -> np.ndarray | None:
+    if metric is None:
+        return None
+    m = np.asarray(metric, dtype=np.float64)
+    if m.shape != (d, d) or not np.allclose(m, m.T, rtol=1e-10, atol=1e-12):
+        raise ValueError(f"metric: {m.shape} or asymmetric not allowed; expected symmetric ({d}, {d})")
+    try:
+        return np.linalg.cholesky(m)
+    except np.linalg.LinAlgError:
+        raise ValueError("metric: not positive definite; allowed positive definite matrices") from None
+
+
+def _truths(n, params, space, param_scale, images, max_param_ratio, max_image_ratio) -> list:
+    """(edge truth function, ratio) pairs for the pruning tests that have data."""
+    for name, ratio in (("max_param_ratio", max_param_ratio), ("max_image_ratio", max_image_ratio)):
+        if not ratio > 1.0:
+            raise ValueError(f"{name}: {ratio!r} is out of range; allowed ratio > 1")
+    out = []
+    if params is None and (space is not None or param_scale is not None):
+        raise ValueError("params: missing; space and param_scale need the settings of every code")
+    if params is not None:
+        p = np.asarray(params, dtype=np.float64)
+        if p.ndim != 2 or len(p) != n or not np.all(np.isfinite(p)):
+            raise ValueError(f"params: shape {p.shape} not allowed; expected finite ({n}, P)")
+        if space is None:
+            lo, hi = p.min(axis=0), p.max(axis=0)
+            space = ParamSpace([Parameter(f"p{j}", lo[j], max(hi[j], lo[j] + 1.0)) for j in range(len(lo))])
+        if len(space) != p.shape[1]:
+            raise ValueError(f"space: has {len(space)} parameters; params has {p.shape[1]} columns")
+        scale = space.spacing(p) if param_scale is None else np.asarray(param_scale, dtype=np.float64)
+        if scale.shape != (p.shape[1],) or not np.all(scale > 0):
+            raise ValueError(f"param_scale: {scale!r} not allowed; expected {p.shape[1]} positive values")
+        out.append((lambda u, v: space.distance(p[u], p[v], scale), float(max_param_ratio)))
+    if images is not None:
+        img = np.asarray(images, dtype=np.float64).reshape(len(images), -1)
+        if len(img) != n or not np.all(np.isfinite(img)):
+            raise ValueError(f"images: {len(img)} images not allowed; expected {n} finite images")
+        out.append((lambda u, v: _rms(img, u, v), float(max_image_ratio)))
+    return out
+
+
+def _rms(img: np.ndarray, u: np.ndarray, v: np.ndarray, *, chunk=4096) -> np.ndarray:
+    """RMS pixel difference per edge, in pixel units; chunked to bound memory."""
+    out = np.empty(len(u))
+    for s in range(0, len(u), chunk):
+        diff = img[u[s:s + chunk]] - img[v[s:s + chunk]]
+        out[s:s + chunk] = np.sqrt(np.mean(diff * diff, axis=1))
+    return out
+
+
+def _drop_self(idx: np.ndarray) -> np.ndarray:
+    """Neighbour lists without the node itself (duplicates may push it off position 0)."""
+    n, m = idx.shape
+    keep = idx != np.arange(n)[:, None]
+    keep[keep.all(axis=1), -1] = False
+    return idx[keep].reshape(n, m - 1)
+
+
+def _lengths(warped, u, v) -> np.ndarray:
+    diff = warped[u] - warped[v]
+    return np.maximum(np.sqrt(np.sum(diff * diff, axis=1)), _TINY)
+
+
+def _knn_edges(warped, idx):
+    """Undirected edge list (u < v, no repeats) of the union of directed kNN edges."""
+    n, k = idx.shape
+    rows, cols = np.repeat(np.arange(n), k), idx.ravel()
+    lo, hi = np.minimum(rows, cols), np.maximum(rows, cols)
+    _, first = np.unique(lo * np.int64(n) + hi, return_index=True)
+    return lo[first], hi[first], _lengths(warped, lo[first], hi[first])
+
+
+def _node_median(n, u, v, values) -> np.ndarray:
+    """Median of `values` over the edges at each node (NaN for a node without edges)."""
+    nodes, vals = np.r_[u, v], np.r_[values, values]
+    vals = vals[np.lexsort((vals, nodes))]
+    counts = np.bincount(nodes, minlength=n)
+    starts = np.cumsum(counts) - counts
+    med, has = np.full(n, np.nan), counts > 0
+    med[has] = 0.5 * (vals[(starts + (counts - 1) // 2)[has]] + vals[(starts + counts // 2)[has]])
+    return med
+
+
+def _short_circuits(n, u, v, code_len, truth, ratio) -> np.ndarray:
+    """Edges spanning far more truth than their code length buys at either end (see build_graph)."""
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+        rho = _node_median(n, u, v, truth / code_len)
+        typical = _node_median(n, u, v, truth)
+        flagged = np.zeros(len(u), dtype=bool)
+        for end in (u, v):
+            flagged |= (truth > ratio * rho[end] * code_len) & (truth > ratio * typical[end])
+    return flagged
+
+
+def _symmetric(n, u, v, w) -> sparse.csr_matrix:
+    return sparse.csr_matrix((np.r_[w, w], (np.r_[u, v], np.r_[v, u])), shape=(n, n))
+
+
+def _components(n, u, v) -> tuple[int, np.ndarray]:
+    n_comp, labels = csgraph.connected_components(_symmetric(n, u, v, np.ones(len(u))), directed=False)
+    return int(n_comp), labels
+
+
+def _restore(n, u, v, w, flagged) -> tuple[np.ndarray, int]:
+    """Keep mask: unflagged edges plus the shortest flagged ones needed to stay connected (Kruskal)."""
+    keep = ~flagged
+    _, labels = _components(n, u[keep], v[keep])
+    parent = list(range(int(labels.max()) + 1))
+
+    def root(a):
+        while parent[a] != a:
+            parent[a] = parent[parent[a]]
+            a = parent[a]
+        return a
+
+    restored, candidates = 0, np.flatnonzero(flagged)
+    for e in candidates[np.argsort(w[candidates], kind="stable")]:
+        a, b = root(labels[u[e]]), root(labels[v[e]])
+        if a != b:
+            parent[a], keep[e] = b, True
+            restored += 1
+    return keep, restored
+
+
+def _bridges(warped, labels, n_comp) -> tuple[np.ndarray, np.ndarray]:
+    """For each component but the largest, its shortest code-space edge to the largest."""
+    main = int(np.argmax(np.bincount(labels)))
+    main_nodes = np.flatnonzero(labels == main)
+    main_tree = cKDTree(warped[main_nodes])
+    bu, bv = [], []
+    for c in (c for c in range(n_comp) if c != main):
+        members = np.flatnonzero(labels == c)
+        dist, j = main_tree.query(warped[members])
+        best = int(np.argmin(dist))
+        bu.append(members[best])
+        bv.append(main_nodes[j[best]])
+    return np.array(bu, dtype=np.int64), np.array(bv, dtype=np.int64)
+
+
+# -- querying ----------------------------------------------------------------------------------
+def nearest_nodes(graph: LatentGraph, z, count=1) -> tuple[np.ndarray, np.ndarray]:
+    """Indices and code distances of the `count` nearest nodes; z (d,) gives (count,) arrays,
+    z (M, d) gives (M, count)."""
+    count = _int(count, "count", 1, len(graph))
+    z, d = np.asarray(z, dtype=np.float64), graph.codes.shape[1]
+    if z.ndim not in (1, 2) or z.shape[-1] != d or not np.all(np.isfinite(z)):
+        raise ValueError(f"z: shape {z.shape} not allowed; expected finite ({d},) or (M, {d})")
+    dist, idx = graph.tree.query(graph.warp(z), k=list(range(1, count + 1)))
+    return idx, dist
+
+
+def lower_bound(graph: LatentGraph, target: int) -> np.ndarray:
+    """(N,) the A* heuristic: straight code distance from every node to `target`."""
+    diff = graph.warped - graph.warped[_int(target, "target", 0, len(graph) - 1)]
+    return np.sqrt(np.sum(diff * diff, axis=1))
+
+
+def shortest_path(graph: LatentGraph, source: int, target: int, *, heuristic=True,
+                  backend="corridor", slack=0.1) -> tuple[np.ndarray, float]:
+    """Node indices from source to target and the path length (code units).
+
+    Every edge weighs at least the straight code distance between its ends, so that distance to
+    the target is an admissible, consistent A* heuristic. backend "heap": A* (Dijkstra if
+    heuristic=False) in Python over the CSR arrays. backend "corridor": the same bound used as a
+    filter; only nodes v with |v - source| + |v - target| <= U can lie on a path of length <= U,
+    so scipy's Dijkstra runs on that corridor, U starting at (1 + slack) * |source - target| and
+    raised to the corridor path's length until the path fits (then it is exact). Much faster.
+    Raises LookupError if target is unreachable.
+    """
+    s, t = _int(source, "source", 0, len(graph) - 1), _int(target, "target", 0, len(graph) - 1)
+    path, length = _route(graph, {s: 0.0}, {t: 0.0}, graph.warped[s], graph.warped[t],
+                          heuristic=heuristic, backend=backend, slack=slack)
+    return np.array(path, dtype=np.int64), length
+
+
+def path_with_ends(graph: LatentGraph, z_start, z_end, *, attach=3, backend="corridor",
+                   return_nodes=False):
+    """Code polyline (M, d) from z_start through graph nodes to z_end (and the node indices).
+
+    Each end is an extra vertex joined to its `attach` nearest nodes by code-distance edges; the
+    route is the shortest path between the two extra vertices.
+    """
+    z_start, z_end = (np.asarray(z, dtype=np.float64) for z in (z_start, z_end))
+    d = graph.codes.shape[1]
+    if z_start.shape != (d,) or z_end.shape != (d,):
+        raise ValueError(f"z_start, z_end: shapes {z_start.shape}, {z_end.shape}; expected ({d},) each")
+    count = min(_int(attach, "attach", 1), len(graph))
+    (si, sd), (ei, ed) = nearest_nodes(graph, z_start, count), nearest_nodes(graph, z_end, count)
+    starts = {int(i): float(c) for i, c in zip(si, sd)}
+    exits = {int(i): float(c) for i, c in zip(ei, ed)}
+    path, _ = _route(graph, starts, exits, graph.warp(z_start), graph.warp(z_end), backend=backend)
+    line = np.vstack([z_start[None], graph.codes[path], z_end[None]])
+    return (line, np.array(path, dtype=np.int64)) if return_nodes else line
+
+
+def _route(graph, starts: dict, exits: dict, a, b, *, heuristic=True, backend="corridor", slack=0.1):
+    """Shortest route from a virtual start (edges to `starts`, with costs) to a virtual goal (reached
+    from `exits`, with costs); a and b are the warped end codes the straight-distance bound uses."""
+    if backend == "heap":
+        return _heap_search(graph, starts, exits, b.tolist() if heuristic else None)
+    if backend != "corridor":
+        raise ValueError(f"backend: {backend!r} is not allowed; expected 'corridor' or 'heap'")
+    if not slack >= 0:
+        raise ValueError(f"slack: {slack!r} is out of range; allowed slack >= 0")
+    view = graph.cached("kd", lambda: _KdView(graph))
+    unreachable = LookupError(f"target: unreachable from start nodes {sorted(starts)[:5]}")
+    starts = {int(view.rank[i]): c for i, c in starts.items()}  # into kd-tree numbering
+    exits = {int(view.rank[i]): c for i, c in exits.items()}
+    pinned = np.array(list(starts) + list(exits), dtype=np.int64)
+    bound = max((1.0 + slack) * float(np.linalg.norm(a - b)), view.step) if heuristic else math.inf
+    while True:
+        nodes = _corridor(view, a, b, bound, pinned)
+        whole = len(nodes) == len(graph)
+        path, length = _corridor_search(view, nodes, starts, exits)
+        if path is None and whole:
+            raise unreachable
+        if path is None:
+            bound *= 1.5  # the corridor has a gap; widen it
+        elif length <= bound or whole:
+            return view.order[path].tolist(), length
+        else:
+            bound = length  # a real route this long exists, so the optimum fits in that corridor
+
+
+def _corridor(view, a, b, bound, pinned) -> np.ndarray:
+    """Sorted kd numbers of the nodes v with |v - a| + |v - b| <= bound, plus `pinned`."""
+    if not np.isfinite(bound):
+        return np.arange(len(view.order))
+    # Blocks whose bounding ball may meet the ellipsoid, then the exact test on their codes only.
+    near = _dist(view.centre, a) + _dist(view.centre, b) - 2 * view.radius <= bound * (1 + 1e-9)
+    cand = (np.flatnonzero(near)[:, None] * _BLOCK + np.arange(_BLOCK)).ravel()
+    cand = cand[cand < len(view.order)]
+    x = view.warped[cand]
+    inside = np.zeros(len(view.order), dtype=bool)
+    inside[cand[_dist(x, a) + _dist(x, b) <= bound * (1 + 1e-9)]] = True
+    inside[pinned] = True
+    return np.flatnonzero(inside)
+
+
+def _dist(x, p) -> np.ndarray:
+    diff = x - p
+    return np.sqrt(np.einsum("ij,ij->i", diff, diff))  # einsum: no multi-threaded BLAS call
+
+
+class _KdView:
+    """The graph renumbered in kd-tree order, so nearby codes sit together in memory, with
+    bounding balls of runs of _BLOCK consecutive codes (spatially compact runs)."""
+
+    def __init__(self, graph: LatentGraph):
+        self.order = graph.tree.indices
+        self.rank = np.empty_like(self.order)
+        self.rank[self.order] = np.arange(len(self.order))
+        self.adjacency = graph.adjacency[self.order][:, self.order].tocsr()
+        self.degree = np.diff(self.adjacency.indptr)
+        self.warped = graph.warped[self.order]
+        self.step = float(np.median(graph.adjacency.data)) if graph.adjacency.nnz else 0.0
+        n = len(self.order)
+        x = self.warped[np.minimum(np.arange(-(-n // _BLOCK) * _BLOCK), n - 1)]  # last run padded
+        x = x.reshape(-1, _BLOCK, x.shape[1])                                     # (runs, _BLOCK, d)
+        self.centre = x.mean(axis=1)
+        self.radius = np.sqrt(np.max(np.sum((x - self.centre[:, None]) ** 2, axis=2), axis=1))
+
+
+def _corridor_search(view: _KdView, nodes, starts, exits):
+    """scipy Dijkstra over the edges leaving `nodes` (kd numbers) from a virtual start, row N.
+
+    Rows of other nodes are left empty: those nodes can be reached but lead nowhere, which spares
+    renumbering the corridor."""
+    a, n = view.adjacency, view.adjacency.shape[0]
+    lo, counts = a.indptr[nodes], view.degree[nodes]
+    ends = np.cumsum(counts)
+    pos = np.arange(ends[-1]) - np.repeat(ends - counts - lo, counts)  # CSR slots of those rows
+    row_counts = np.zeros(n + 1, dtype=np.int32)
+    row_counts[nodes], row_counts[n] = counts, len(starts)
+    indptr = np.r_[0, np.cumsum(row_counts, dtype=np.int32)].astype(np.int32)  # int32: no copy in csgraph
+    indices = np.r_[a.indices[pos], np.array(list(starts), dtype=np.int32)]
+    data = np.r_[a.data[pos], np.maximum(list(starts.values()), _TINY)]
+    sub = sparse.csr_matrix((data, indices, indptr), shape=(n + 1, n + 1), copy=False)
+    dist, pred = csgraph.dijkstra(sub, indices=n, return_predecessors=True)
+    exit_nodes = np.array(list(exits), dtype=np.int64)
+    totals = dist[exit_nodes] + np.array(list(exits.values()))
+    best = int(np.argmin(totals))
+    if not np.isfinite(totals[best]):
+        return None, math.inf
+    path, node = [], int(exit_nodes[best])
+    while node != n:
+        path.append(node)
+        node = int(pred[node])
+    return path[::-1], float(totals[best])
+
+
+def _heap_search(graph, starts: dict, exits: dict, goal):
+    """A* with heapq over the CSR arrays; `goal` is the warped goal code (None: Dijkstra).
+
+    The virtual goal vertex is -1, entered from each exit node at its exit cost."""
+    indptr, indices, weights, pts = graph.cached("lists", lambda: (
+        graph.adjacency.indptr.tolist(), graph.adjacency.indices.tolist(),
+        graph.adjacency.data.tolist(), graph.warped.tolist()))
+    h = (lambda v: math.dist(pts[v], goal)) if goal is not None else (lambda v: 0.0)
+    goal_id, inf = -1, math.inf
+    best, parent, heap, closed, exit_node = {}, {}, [], set(), None
+    for s, cost in starts.items():
+        if cost < best.get(s, inf):
+            best[s], parent[s] = cost, goal_id
+            heapq.heappush(heap, (cost + h(s), cost, s))
+    while heap:
+        _, g, u = heapq.heappop(heap)
+        if u == goal_id:
+            break
+        if u in closed:
+            continue
+        closed.add(u)
+        if u in exits and g + exits[u] < best.get(goal_id, inf):
+            best[goal_id], exit_node = g + exits[u], u
+            heapq.heappush(heap, (best[goal_id], best[goal_id], goal_id))
+        for p in range(indptr[u], indptr[u + 1]):
+            v, nd = indices[p], g + weights[p]
+            if nd < best.get(v, inf):
+                best[v], parent[v] = nd, u
+                heapq.heappush(heap, (nd + h(v), nd, v))
+    else:
+        raise LookupError(f"target: unreachable from start nodes {sorted(starts)[:5]}")
+    path, node = [], exit_node
+    while node != goal_id:
+        path.append(node)
+        node = parent[node]
+    return path[::-1], best[goal_id]
