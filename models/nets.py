@@ -18,7 +18,7 @@ class ModelConfig:
     channels: int = 1             # 1 grayscale, 3 RGB
     latent_dim: int = 3           # d
     feature_dim: int = 3          # F, length of the settings features
-    base_width: int = 32          # channels at half resolution; doubles per level, capped
+    base_width: int = 16          # channels at half resolution; doubles per level, capped
     max_width: int = 128
     refine_upto: int = 16         # decoder adds a 3x3 refinement conv at sizes up to this
     bottom: int = 4               # spatial size of the deepest feature map

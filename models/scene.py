@@ -211,15 +211,15 @@ def _open_image(path: Path, where: dict, max_image_pixels: int) -> Image.Image:
         raise SceneError(f"is not a readable image ({exc})", **where) from None
 
 
-def _native_channels(img: Image.Image) -> int:
+def native_channels(img: Image.Image) -> int:
     return 1 if img.mode in _GRAY_MODES or img.mode.startswith("I;16") else 3
 
 
-def _to_array(img: Image.Image, resolution: int, channels: int) -> np.ndarray:
+def image_to_array(img: Image.Image, resolution: int, channels: int) -> np.ndarray:
     """(resolution, resolution, channels) float32 in [0, 1]; non-square images are squashed."""
     size = (resolution, resolution)
     lanczos = Image.Resampling.LANCZOS
-    if _native_channels(img) == 1 and img.mode not in ("1", "L", "LA", "La"):
+    if native_channels(img) == 1 and img.mode not in ("1", "L", "LA", "La"):
         # 16/32-bit integer or float gray: resize in float so no precision is lost
         raw = np.asarray(img, dtype=np.float64)
         scale = 1.0 if img.mode == "F" else 65535.0  # PNG stores at most 16 bits per sample
@@ -257,13 +257,13 @@ def load_scene(root: str | Path, resolution: int = 64, min_samples: int = 8, cha
     arrays, first = [], None
     for path, where in zip(paths, wheres):
         with _open_image(path, where, max_image_pixels) as img:
-            found = _native_channels(img)
+            found = native_channels(img)
             if first is None:
                 first, want = where, channels or found
             elif channels is None and found != want:
                 raise SceneError(f"has {found} channel(s) but {first['value']!r} (row {first['row']}) has "
                                  f"{want}; pass channels=1 or 3 to convert", **where)
-            arrays.append(_to_array(img, resolution, want))
+            arrays.append(image_to_array(img, resolution, want))
     images = np.stack(arrays).astype(np.float32, copy=False)
     return Scene(name=name, space=space, images=images, params=params, files=files, root=root)
 

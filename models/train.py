@@ -39,7 +39,8 @@ class TrainConfig:
     triplet_tolerance: float = 0.15
     holdout: float = 0.15
     seed: int = 0
-    budget_seconds: float | None = None  # wall-clock cap; the schedule is re-planned to fit it
+    budget_seconds: float | None = None  # wall-clock cap; the schedule is compressed to fit it
+    confidence_tau: float = 0.90   # a frame is faithful when its SSIM against the truth is >= tau
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -85,31 +86,32 @@ def to_images(x: torch.Tensor) -> np.ndarray:
 class Progress:
     """A one-line progress bar on a stream: step, losses, ETA. Redraws at most every `every` s."""
 
-    def __init__(self, total: int, stream: TextIO | None = sys.stderr, every: float = 0.5):
-        self.total, self.stream, self.every = total, stream, every
+    def __init__(self, stream: TextIO | None = sys.stderr, every: float = 0.5):
+        self.stream, self.every = stream, every
         self.start = time.perf_counter()
         self.last = -math.inf
 
-    def update(self, step: int, total: int, logs: dict, force: bool = False) -> None:
+    def update(self, step: int, done: float, logs: dict, force: bool = False) -> None:
+        """`done` in [0, 1]: the share of training finished (by steps or by budget)."""
         now = time.perf_counter()
         if self.stream is None or (not force and now - self.last < self.every):
             return
         self.last = now
-        done = step / max(total, 1)
+        done = min(max(done, 0.0), 1.0)
         eta = (now - self.start) * (1 - done) / max(done, 1e-9)
         bar = "#" * int(24 * done)
         text = " ".join(f"{k} {v:.4g}" for k, v in logs.items())
-        self.stream.write(f"\rtrain [{bar:<24}] {step}/{total} {text} eta {eta:5.0f}s ")
+        self.stream.write(f"\rtrain [{bar:<24}] step {step} {text} eta {eta:4.0f}s ")
         if force:
             self.stream.write("\n")
         self.stream.flush()
 
 
-def _lr_at(step: int, total: int, cfg: TrainConfig) -> float:
-    warm = max(1, int(cfg.warmup * total))
-    if step < warm:
-        return cfg.lr * (step + 1) / warm
-    u = min(1.0, (step - warm) / max(1, total - warm))
+def _lr_at(done: float, cfg: TrainConfig) -> float:
+    """Learning rate at `done` in [0, 1] of training: linear warm-up, then cosine decay."""
+    if done < cfg.warmup:
+        return cfg.lr * max(done, 1e-3) / cfg.warmup
+    u = min(1.0, (done - cfg.warmup) / max(1e-9, 1.0 - cfg.warmup))
     low = cfg.lr * cfg.final_lr_share
     return low + 0.5 * (cfg.lr - low) * (1 + math.cos(math.pi * u))
 
@@ -142,24 +144,28 @@ def train(scene: Scene, model_config: ModelConfig | None = None, train_config: T
     model = Autoencoder(mcfg)
     opt = torch.optim.Adam(model.parameters(), lr=cfg.lr)
     total = cfg.steps
-    bar = Progress(total, progress)
+    bar = Progress(progress)
     history: list[dict] = []
     t0 = time.perf_counter()
     step = 0
     while step < total:
-        if cfg.budget_seconds is not None and step == 20:  # re-plan the schedule to fit the budget
-            per_step = (time.perf_counter() - t0) / 20
-            total = max(21, min(total, int(cfg.budget_seconds / per_step)))
+        # progress is the larger of steps done and budget used, so a wall-clock budget compresses
+        # the whole schedule (warm-up and decay) instead of cutting it off
+        done = step / total
+        if cfg.budget_seconds is not None:
+            done = max(done, (time.perf_counter() - t0) / cfg.budget_seconds)
         for group in opt.param_groups:
-            group["lr"] = _lr_at(step, total, cfg)
+            group["lr"] = _lr_at(done, cfg)
         logs = _step(model, opt, x_all, feats, params, space, scale, trip, cfg, rng, n)
         step += 1
         if step == 1 or step % 50 == 0 or step == total:
             history.append({"step": step, **logs})
-        bar.update(step, total, logs, force=step == total)
+        over = cfg.budget_seconds is not None and time.perf_counter() - t0 > cfg.budget_seconds
+        share = 1.0 if over else max(done, step / total)
+        bar.update(step, share, logs, force=step == total or over)
         if on_step is not None:
-            on_step(step, total)
-        if cfg.budget_seconds is not None and time.perf_counter() - t0 > cfg.budget_seconds:
+            on_step(round(share * total), total)
+        if over:
             break
     wall = time.perf_counter() - t0
     model.eval()
