@@ -22,3 +22,30 @@ def tiny_demo_scene(size: int = 16, az_step: float = 45.0, elevations=(20.0, 45.
 @pytest.fixture(scope="session")
 def tiny_scene() -> Scene:
     return tiny_demo_scene()
+
+
+SMALL_TRAIN = dict(steps=400, batch_triplets=8, extra_images=6, lr=3e-3, confidence_tau=0.85)
+
+
+@pytest.fixture(scope="session")
+def small_scene() -> Scene:
+    """16 px demo tile, azimuth every 30 deg x elevation every 10 deg (72 images)."""
+    return tiny_demo_scene(size=16, az_step=30.0, elevations=(20.0, 30.0, 40.0, 50.0, 60.0, 70.0))
+
+
+@pytest.fixture(scope="session")
+def small_bundle(small_scene, tmp_path_factory) -> Path:
+    """A bundle trained for a few seconds, with its confidence calibrated (tau 0.85)."""
+    from models.pipeline import train_bundle
+    from models.train import TrainConfig
+
+    out = tmp_path_factory.mktemp("small-bundle")
+    train_bundle(small_scene, out, name="small-tile", train_config=TrainConfig(**SMALL_TRAIN), progress=None)
+    return out
+
+
+@pytest.fixture(scope="session")
+def small_engine(small_bundle):
+    from models.engine import Engine
+
+    return Engine.load(small_bundle)

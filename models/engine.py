@@ -1,0 +1,239 @@
+"""Serving engine: one bundle in memory with its latent graph; frames between two ends.
+
+Ends are images (encoded) or settings (a local affine chart over the bank codes of the nearest
+samples in settings space, with the settings-to-code head as fallback). A geodesic route is the
+shortest path over the pruned kNN graph of bank codes, relaxed into a smooth curve that is
+projected back onto the manifold (z <- E(D(z))) after every round, then resampled at equal arc
+length. Every frame carries the settings it shows (code-to-settings head) and a calibrated
+confidence. Frames are synthesized, not captured.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Mapping, Sequence
+
+import numpy as np
+import torch
+from scipy.spatial import cKDTree
+
+from . import graph as lgraph
+from . import route as lroute
+from .bundle import Bundle, load_bundle
+from .confidence import ConfidenceModel
+from .train import to_images, to_tensor
+from .triplets import normalised_coords
+
+ROUTES = ("geodesic", "straight")
+SIGNALS = ("cycle", "nearest", "settings", "image_cycle")
+
+
+@dataclass
+class Endpoint:
+    """One end of a request: an image (H, W, C) float in [0, 1] at the model's size, or settings."""
+    image: np.ndarray | None = None
+    params: Mapping[str, float] | None = None
+
+    def __post_init__(self) -> None:
+        if (self.image is None) == (self.params is None):
+            raise ValueError("an end needs exactly one of 'image' or 'params'")
+
+
+@dataclass
+class Frame:
+    index: int                 # 1-based
+    t: float                   # fraction of the route's length
+    image: np.ndarray          # (H, W, C) float32 in [0, 1]
+    params: dict[str, float]   # the settings the frame shows (code-to-settings head)
+    confidence: float | None   # calibrated probability that SSIM against the true view >= tau
+    accepted: bool
+    signals: dict[str, float] = field(default_factory=dict)
+
+
+@dataclass
+class Answer:
+    route: str
+    frames: list[Frame]
+    start_params: dict[str, float]
+    end_params: dict[str, float]
+    codes: np.ndarray          # (frames, d) codes of the frames
+    path_nodes: np.ndarray     # bank indices the geodesic passed through (empty for straight)
+
+    @property
+    def accepted(self) -> int:
+        return sum(f.accepted for f in self.frames)
+
+    @property
+    def rejected(self) -> int:
+        return len(self.frames) - self.accepted
+
+
+class Engine:
+    def __init__(self, bundle: Bundle, *, graph_k: int | None = None, relax_rounds: int = 8,
+                 relax_step: float = 0.5, chart_neighbours: int = 6, attach: int = 3):
+        self.bundle = bundle
+        self.model = bundle.model.eval()
+        self.space = bundle.space
+        self.manifest = bundle.manifest
+        self.scale = bundle.scale
+        self.relax_rounds, self.relax_step, self.attach = relax_rounds, relax_step, attach
+        self.chart_neighbours = chart_neighbours
+        bank_images = bundle.images()
+        self.graph = lgraph.build_graph(bundle.codes, k=graph_k, params=bundle.params, space=self.space,
+                                        param_scale=self.scale, images=bank_images.reshape(len(bank_images), -1))
+        u, box = normalised_coords(bundle.params, self.space, self.scale)
+        self._box = box
+        self._settings_tree = cKDTree(u, boxsize=box)
+        nn, _ = self.graph.tree.query(self.graph.warped, k=2)
+        self.spacing = float(np.median(nn[:, 1]))  # typical code distance between bank neighbours
+        conf = bundle.manifest.get("confidence")
+        self.confidence = ConfidenceModel.from_dict(conf["model"]) if conf else None
+        self.tau = float(conf["tau"]) if conf else None
+
+    @classmethod
+    def load(cls, path: str | Path, **kw) -> "Engine":
+        return cls(load_bundle(path), **kw)
+
+    @property
+    def resolution(self) -> int:
+        return self.bundle.resolution
+
+    @property
+    def channels(self) -> int:
+        return self.bundle.channels
+
+    # -- ends ---------------------------------------------------------------------------------
+    @torch.inference_mode()
+    def encode(self, images: np.ndarray) -> np.ndarray:
+        """(N, H, W, C) float in [0, 1] at the model's size -> (N, d) codes."""
+        images = np.asarray(images, dtype=np.float32)
+        want = (self.resolution, self.resolution, self.channels)
+        if images.ndim != 4 or images.shape[1:] != want:
+            raise ValueError(f"images: shape {images.shape[1:]} not allowed; expected {want}")
+        return self.model.encoder(to_tensor(images)).double().numpy()
+
+    @torch.inference_mode()
+    def decode(self, codes: np.ndarray) -> np.ndarray:
+        """(N, d) codes -> (N, H, W, C) float32 images, decoded in one batch."""
+        return to_images(self.model.decoder(torch.as_tensor(codes, dtype=torch.float32)))
+
+    @torch.inference_mode()
+    def settings_of(self, codes: np.ndarray) -> np.ndarray:
+        """(N, d) codes -> (N, P) settings the code-to-settings head reads from them."""
+        f = self.model.to_features(torch.as_tensor(codes, dtype=torch.float32)).double().numpy()
+        return self.space.from_features(f)
+
+    def code_of_settings(self, p: np.ndarray) -> np.ndarray:
+        """(N, P) settings -> (N, d) codes by a local affine chart over the nearest bank samples."""
+        p = np.atleast_2d(np.asarray(p, dtype=np.float64))
+        k = min(self.chart_neighbours, len(self.bundle.codes))
+        u = np.mod((self.space.wrap(p) - self.space.lo) / self.scale, self._box)
+        dist, idx = self._settings_tree.query(u, k=k)
+        out = np.empty((len(p), self.bundle.codes.shape[1]))
+        for r in range(len(p)):
+            out[r] = self._chart(p[r], idx[r], dist[r])
+        return out
+
+    def _chart(self, p: np.ndarray, idx: np.ndarray, dist: np.ndarray) -> np.ndarray:
+        codes = self.bundle.codes[idx]
+        if dist[0] < 1e-9:
+            return codes[0]
+        x = self.space.delta(p, self.bundle.params[idx]) / self.scale  # (k, P) offsets, spacing units
+        w = 1.0 / (dist + 0.25) ** 2
+        design = np.hstack([np.ones((len(idx), 1)), x]) * np.sqrt(w)[:, None]
+        if np.linalg.matrix_rank(design) < design.shape[1]:  # neighbours on a line: use the head
+            with torch.inference_mode():
+                f = torch.as_tensor(self.space.features(p[None]), dtype=torch.float32)
+                return self.model.to_code(f).double().numpy()[0]
+        coef, *_ = np.linalg.lstsq(design, codes * np.sqrt(w)[:, None], rcond=None)
+        return coef[0]  # the chart's value at the offset 0, i.e. at p
+
+    def end_code(self, end: Endpoint) -> tuple[np.ndarray, np.ndarray]:
+        """Code and settings (P,) of one end; settings of an image end are read by the head."""
+        if end.image is not None:
+            z = self.encode(np.asarray(end.image)[None])[0]
+            return z, self.settings_of(z[None])[0]
+        p = self.space.vector(end.params)
+        return self.code_of_settings(p[None])[0], p
+
+    # -- routes -------------------------------------------------------------------------------
+    @torch.inference_mode()
+    def project(self, codes: np.ndarray) -> np.ndarray:
+        """z <- E(D(z)): back onto the manifold the autoencoder has learned."""
+        z = torch.as_tensor(codes, dtype=torch.float32)
+        return self.model.encoder(self.model.decoder(z)).double().numpy()
+
+    def route_line(self, z_start: np.ndarray, z_end: np.ndarray, route: str = "geodesic"
+                   ) -> tuple[np.ndarray, np.ndarray]:
+        """The route's polyline (M, d) from z_start to z_end and the bank nodes it passes."""
+        if route not in ROUTES:
+            raise ValueError(f"route: {route!r} is not allowed; expected one of {list(ROUTES)}")
+        if route == "straight":
+            return np.vstack([z_start, z_end]), np.zeros(0, dtype=np.int64)
+        line, nodes = lgraph.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
+        # midpoints give the relaxation room to round corners between bank nodes
+        dense = lroute.at_t(line, np.linspace(0.0, 1.0, 2 * len(line) - 1))
+        relaxed = lroute.relax(dense, self.project, rounds=self.relax_rounds, step=self.relax_step)
+        return relaxed, nodes
+
+    # -- confidence ---------------------------------------------------------------------------
+    def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray) -> np.ndarray:
+        """(N, len(SIGNALS)) off-manifold signals, each larger = worse, in code-spacing units:
+        cycle residual ||E(D(z)) - z||, distance to the nearest bank code, distance between the
+        settings the frame shows and those it should show, and the RMS pixel change D(E(D(z)))."""
+        with torch.inference_mode():
+            z2 = self.model.encoder(to_tensor(images)).double().numpy()
+            img2 = to_images(self.model.decoder(torch.as_tensor(z2, dtype=torch.float32)))
+        cycle = np.linalg.norm(z2 - codes, axis=1) / self.spacing
+        nearest = self.graph.tree.query(self.graph.warp(codes), k=1)[0] / self.spacing
+        shown = self.settings_of(codes)
+        settings = self.space.distance(shown, intended, self.scale)
+        image_cycle = np.sqrt(np.mean((img2 - images) ** 2, axis=(1, 2, 3)))
+        return np.stack([cycle, nearest, settings, image_cycle], axis=1)
+
+    def score(self, sig: np.ndarray) -> np.ndarray | None:
+        if self.confidence is None:
+            return None
+        return self.confidence.predict(sig)
+
+    def _frames(self, codes, t, intended, min_confidence) -> list[Frame]:
+        images = self.decode(codes)
+        sig = self.signals(codes, images, intended)
+        conf = self.score(sig)
+        shown = self.settings_of(codes)
+        frames = []
+        for i in range(len(codes)):
+            c = None if conf is None else float(conf[i])
+            frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(shown[i]),
+                                confidence=c, accepted=c is None or c >= min_confidence,
+                                signals=dict(zip(SIGNALS, map(float, sig[i])))))
+        return frames
+
+    def between(self, start: Endpoint, end: Endpoint, frames: int = 8, route: str = "geodesic",
+                min_confidence: float = 0.5) -> Answer:
+        """`frames` in-between frames, frame i at t = i / (frames + 1) of the route's length."""
+        if isinstance(frames, bool) or not isinstance(frames, (int, np.integer)) or frames < 1:
+            raise ValueError(f"frames: {frames!r} is out of range; expected an integer >= 1")
+        if not 0.0 <= min_confidence <= 1.0:
+            raise ValueError(f"min_confidence: {min_confidence!r} is outside [0, 1]")
+        zs, ps = self.end_code(start)
+        ze, pe = self.end_code(end)
+        line, nodes = self.route_line(zs, ze, route)
+        codes, t = lroute.resample(line, frames, return_t=True)
+        intended = self.space.lerp(ps, pe, t)
+        return Answer(route=route, frames=self._frames(codes, t, intended, min_confidence),
+                      start_params=self.space.named(ps), end_params=self.space.named(pe),
+                      codes=codes, path_nodes=nodes)
+
+    def fill(self, targets: Sequence[Mapping[str, float]], min_confidence: float = 0.5) -> list[Frame]:
+        """One frame per settings target (a missing view)."""
+        if len(targets) == 0:
+            raise ValueError("targets: empty; expected at least one settings target")
+        if not 0.0 <= min_confidence <= 1.0:
+            raise ValueError(f"min_confidence: {min_confidence!r} is outside [0, 1]")
+        p = np.array([self.space.vector(tg) for tg in targets]).reshape(len(targets), len(self.space))
+        codes = self.code_of_settings(p)
+        frames = self._frames(codes, np.zeros(len(p)), p, min_confidence)
+        for f in frames:
+            f.t = 0.0
+        return frames

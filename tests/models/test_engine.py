@@ -1,0 +1,97 @@
+import numpy as np
+import pytest
+
+from models.engine import Endpoint
+from models.render import DEMO_SPACE
+
+
+def P(az, el):
+    return Endpoint(params={"lamp_azimuth": az, "lamp_elevation": el})
+
+
+def test_frames_follow_the_contract(small_engine):
+    ans = small_engine.between(P(30, 30), P(150, 60), frames=7)
+    assert len(ans.frames) == 7
+    assert [f.t for f in ans.frames] == pytest.approx([i / 8 for i in range(1, 8)])
+    assert [f.index for f in ans.frames] == list(range(1, 8))
+    assert ans.accepted + ans.rejected == 7
+    for f in ans.frames:
+        assert f.image.shape == (16, 16, 1) and 0 <= f.image.min() <= f.image.max() <= 1
+        assert set(f.params) == {"lamp_azimuth", "lamp_elevation"}
+        assert 0.0 <= f.confidence <= 1.0
+        assert f.accepted == (f.confidence >= 0.5)
+
+
+def test_settings_end_at_a_bank_sample_is_its_code(small_engine):
+    bundle = small_engine.bundle
+    for i in (0, 7, 20):
+        z = small_engine.code_of_settings(bundle.params[i][None])[0]
+        assert np.allclose(z, bundle.codes[i])
+
+
+def test_periodic_wrap_route_passes_through_zero(small_engine):
+    # 330 deg -> 30 deg: the short arc crosses 0 deg; a route through 180 deg would be wrong
+    ans = small_engine.between(P(330, 40), P(30, 40), frames=5)
+    nodes = ans.path_nodes
+    assert len(nodes) > 0
+    az = small_engine.bundle.params[nodes, 0]
+    off_zero = np.abs(DEMO_SPACE.delta(np.zeros((len(az), 2)), np.stack([az, np.full_like(az, 40)], 1))[:, 0])
+    assert off_zero.max() <= 60.0, az
+
+
+def test_straight_line_across_the_cylinder_leaves_the_manifold(small_engine):
+    # A chord between opposite azimuths cuts through the inside of the learned cylinder: its frames
+    # are far from every bank code and have a larger cycle residual than the geodesic's.
+    geo = small_engine.between(P(0, 40), P(150, 40), frames=9, route="geodesic")
+    line = small_engine.between(P(0, 40), P(150, 40), frames=9, route="straight")
+    mid = slice(3, 6)
+    geo_near = np.mean([f.signals["nearest"] for f in geo.frames[mid]])
+    line_near = np.mean([f.signals["nearest"] for f in line.frames[mid]])
+    assert line_near > 2 * geo_near
+    assert np.mean([f.confidence for f in line.frames[mid]]) < np.mean([f.confidence for f in geo.frames[mid]])
+
+
+@pytest.mark.parametrize("params, match", [
+    ({"lamp_azimuth": 10}, "missing parameter 'lamp_elevation'"),
+    ({"lamp_azimuth": 10, "lamp_elevation": 40, "zoom": 2}, "unknown parameter 'zoom'"),
+    ({"lamp_azimuth": float("nan"), "lamp_elevation": 40}, "finite"),
+    ({"lamp_azimuth": 10, "lamp_elevation": 85}, "outside"),
+    ({"lamp_azimuth": "ten", "lamp_elevation": 40}, "not a number"),
+])
+def test_bad_settings_are_refused_by_name(small_engine, params, match):
+    with pytest.raises(ValueError, match=match):
+        small_engine.between(Endpoint(params=params), P(10, 40), frames=3)
+
+
+def test_bad_request_values(small_engine):
+    with pytest.raises(ValueError, match="frames"):
+        small_engine.between(P(0, 30), P(60, 30), frames=0)
+    with pytest.raises(ValueError, match="route"):
+        small_engine.between(P(0, 30), P(60, 30), frames=2, route="zigzag")
+    with pytest.raises(ValueError, match="min_confidence"):
+        small_engine.between(P(0, 30), P(60, 30), frames=2, min_confidence=1.5)
+    with pytest.raises(ValueError, match="shape"):
+        small_engine.between(Endpoint(image=np.zeros((16, 16, 3))), P(60, 30), frames=2)
+    with pytest.raises(ValueError, match="exactly one"):
+        Endpoint()
+
+
+def test_image_ends_and_fill(small_engine, small_scene):
+    a, b = small_scene.images[0], small_scene.images[2]
+    ans = small_engine.between(Endpoint(image=a), Endpoint(image=b), frames=3)
+    assert len(ans.frames) == 3
+    frames = small_engine.fill([{"lamp_azimuth": 45, "lamp_elevation": 35}, {"lamp_azimuth": 300, "lamp_elevation": 65}])
+    assert len(frames) == 2
+    shown = np.array([[f.params["lamp_azimuth"], f.params["lamp_elevation"]] for f in frames])
+    # the settings head reads back roughly what was asked (coarse: a few seconds of training)
+    err = np.abs(DEMO_SPACE.delta(shown, np.array([[45, 35], [300, 65]])))
+    assert np.all(err[:, 0] < 45) and np.all(err[:, 1] < 20)
+
+
+def test_calibration_is_stored_with_held_out_metrics(small_engine):
+    conf = small_engine.manifest["confidence"]
+    assert conf["tau"] == 0.85
+    report = small_engine.manifest["metrics"]["confidence"]
+    assert report["status"] == "fitted"
+    assert report["rows"] >= 50
+    assert 0.0 <= report["ece"] <= 1.0 and 0.5 <= report["auroc"] <= 1.0
