@@ -86,17 +86,124 @@ def cmd_models(args) -> int:
     return EXIT_OK
 
 
+def parse_end(text: str, engine) -> "Endpoint":
+    """An end from the command line: an image path, or settings as name=value,name=value."""
+    from PIL import Image
+
+    from models.engine import Endpoint
+    from models.scene import image_to_array, native_channels
+
+    if "=" in text and not Path(text).exists():
+        values = {}
+        for part in text.split(","):
+            name, sep, value = part.partition("=")
+            if not sep or not name.strip():
+                raise UsageError(f"end {text!r}: expected name=value pairs separated by commas")
+            try:
+                values[name.strip()] = float(value)
+            except ValueError:
+                raise UsageError(f"end {text!r}: value {value!r} of {name.strip()!r} is not a number") from None
+        engine.space.vector(values)  # names every unknown, missing or out-of-range parameter
+        return Endpoint(params=values)
+    path = Path(text)
+    if not path.is_file():
+        raise UsageError(f"end {text!r}: no such image file, and not name=value settings")
+    try:
+        with Image.open(path) as img:
+            img.load()
+            native = native_channels(img)
+            if native != engine.channels:
+                raise UsageError(f"end {text!r}: image has {native} channel(s); model {engine.manifest['name']!r} "
+                                 f"expects {engine.channels}")
+            return Endpoint(image=image_to_array(img, engine.resolution, engine.channels))
+    except (OSError, SyntaxError) as exc:
+        raise UsageError(f"end {text!r}: not a readable image ({exc})") from None
+
+
+def _local_engine(args):
+    from models.engine import Engine
+
+    entry = _registry(args).get(args.name, args.version)
+    return Engine.load(entry.path), entry
+
+
+def save_png(image, path: Path) -> None:
+    import numpy as np
+    from PIL import Image
+
+    arr = np.round(np.clip(image, 0.0, 1.0) * 255).astype(np.uint8)
+    Image.fromarray(arr[..., 0] if arr.shape[2] == 1 else arr).save(path)
+
+
+def cmd_between(args) -> int:
+    if args.frames < 1:
+        raise UsageError(f"--frames: {args.frames} is out of range; expected >= 1")
+    if not 0.0 <= args.min_confidence <= 1.0:
+        raise UsageError(f"--min-confidence: {args.min_confidence} is outside [0, 1]")
+    engine, entry = _local_engine(args)
+    start, end = parse_end(args.start, engine), parse_end(args.end, engine)
+    answer = engine.between(start, end, frames=args.frames, route=args.route, min_confidence=args.min_confidence)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    frames = []
+    for f in answer.frames:
+        name = f"frame_{f.index:03d}.png" if f.accepted or args.keep_rejected else None
+        if name:
+            save_png(f.image, out / name)
+        frames.append({"index": f.index, "t": round(f.t, 6), "confidence": f.confidence, "accepted": f.accepted,
+                       "params": f.params, "image": name})
+    manifest = {"model": entry.name, "version": entry.version, "route": answer.route, "synthesized": True,
+                "notice": "frames are synthesized by a learned model, not captured",
+                "start_params": answer.start_params, "end_params": answer.end_params,
+                "accepted": answer.accepted, "rejected": answer.rejected, "frames": frames}
+    (out / "manifest.json").write_text(json.dumps(manifest, indent=1))
+    print(f"{entry.name}@{entry.version} {answer.route}: {answer.accepted} accepted, {answer.rejected} rejected "
+          f"-> {out}")
+    return EXIT_REJECTED if args.strict and answer.rejected else EXIT_OK
+
+
+def cmd_eval(args) -> int:
+    from models.evaluate import evaluate, format_table
+
+    engine, entry = _local_engine(args)
+    out = Path(args.out or f"eval-{entry.name}-{entry.version}")
+    out.mkdir(parents=True, exist_ok=True)
+    report = evaluate(engine, args.truth, min_confidence=args.min_confidence, sheet=out / "contact_sheet.png")
+    report.update({"model": entry.name, "version": entry.version})
+    (out / "report.json").write_text(json.dumps(report, indent=1))
+    print(format_table(report))
+    print(f"report: {out / 'report.json'}  contact sheet: {out / 'contact_sheet.png'}")
+    return EXIT_OK
+
+
 def cmd_demo(args) -> int:
     from models.render import write_demo
 
     out = Path(args.out or tempfile.mkdtemp(prefix="geotween-demo-"))
     print(f"1/2 rendering the demo scene (relief tile under a moving lamp) into {out}")
     scene_dir, truth_dir = write_demo(out)
-    print("2/2 training the demo model (CPU)")
+    print("2/3 training the demo model (CPU)")
     entry = train_into_registry(scene_dir, "relief-tile", _registry(args), resolution=64, latent_dim=None,
                                 steps=args.steps, budget=None, seed=0)
-    print(f"registered {entry.name}@{entry.version}")
-    _print_json({k: v for k, v in entry.metrics.items() if k != "confidence"})
+    m = entry.metrics
+    print(f"registered {entry.name}@{entry.version}: held-out reconstruction {m['holdout_psnr']:.2f} dB, "
+          f"SSIM {m['holdout_ssim']:.4f}, trained in {m['train_seconds']:.0f} s")
+    print("3/3 in-betweens against the true renders")
+    from models.engine import Engine
+    from models.evaluate import evaluate, format_table
+
+    engine = Engine.load(entry.path)
+    report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png")
+    (out / "report.json").write_text(json.dumps(report, indent=1))
+    print(format_table(report))
+    example = out / "between"
+    args_between = argparse.Namespace(name=entry.name, version=entry.version, registry=args.registry,
+                                      start="lamp_azimuth=300,lamp_elevation=30", end="lamp_azimuth=60,lamp_elevation=60",
+                                      frames=8, out=str(example), route="geodesic", min_confidence=0.5,
+                                      keep_rejected=True, strict=False)
+    cmd_between(args_between)
+    print(f"report: {out / 'report.json'}, contact sheet: {out / 'contact_sheet.png'}, frames: {example}")
+    print("frames are synthesized by a learned model, not captured")
     return EXIT_OK
 
 
@@ -130,8 +237,31 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=int, default=0)
     s.set_defaults(func=cmd_train)
 
+    s = sub.add_parser("between", help="frames between two images or settings (synthesized, not captured)")
+    s.add_argument("name")
+    s.add_argument("start", help="image path, or settings such as lamp_azimuth=30,lamp_elevation=40")
+    s.add_argument("end", help="image path, or settings")
+    s.add_argument("--frames", type=int, default=8, help="in-between frames, ends excluded")
+    s.add_argument("--out", required=True, help="folder for the PNG frames and manifest.json")
+    s.add_argument("--route", choices=["geodesic", "straight"], default="geodesic")
+    s.add_argument("--min-confidence", type=float, default=0.5, help="frames below it are rejected")
+    s.add_argument("--keep-rejected", action="store_true", help="write rejected frames too (marked in the manifest)")
+    s.add_argument("--strict", action="store_true", help="exit 3 when any frame is rejected")
+    s.add_argument("--version", type=int, default=None)
+    s.set_defaults(func=cmd_between)
+
+    s = sub.add_parser("eval", help="quality report against a truth set, with baselines")
+    s.add_argument("name")
+    s.add_argument("truth", help="truth folder (truth.json + PNGs), as render-demo writes")
+    s.add_argument("--out", default=None, help="folder for report.json and contact_sheet.png")
+    s.add_argument("--min-confidence", type=float, default=0.5)
+    s.add_argument("--version", type=int, default=None)
+    s.set_defaults(func=cmd_eval)
+
     s = sub.add_parser("models", help="list the registry")
     s.set_defaults(func=cmd_models)
+    from .cli_remote import add_commands
+    add_commands(sub)
     return p
 
 

@@ -1,0 +1,143 @@
+"""Quality report against a truth set: in-betweens by each method scored against the true views.
+
+Methods: cross-dissolve of the two end images (what a user would otherwise reach for), the
+straight route between the two end codes, the geodesic route, and the model's own ceiling
+(decode(encode(true frame))), which no latent route can beat. Ends are the truth set's end images.
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+from PIL import Image
+
+from .confidence import auroc, ece
+from .engine import Endpoint, Engine
+from .metrics import psnr_batch, ssim_batch
+from .scene import image_to_array
+
+METHODS = ("dissolve", "straight", "geodesic", "ceiling")
+TRUTH_FORMAT = "geotween-truth/1"
+
+
+def load_truth(truth_dir: str | Path, resolution: int, channels: int) -> list[dict]:
+    """Pairs of the truth set with images loaded as (H, W, C) float32 at the model's size."""
+    truth_dir = Path(truth_dir)
+    try:
+        doc = json.loads((truth_dir / "truth.json").read_text())
+    except FileNotFoundError:
+        raise ValueError(f"{truth_dir}: no truth.json; expected a truth set written by render-demo") from None
+    if doc.get("format") != TRUTH_FORMAT:
+        raise ValueError(f"{truth_dir / 'truth.json'}: format {doc.get('format')!r}, expected {TRUTH_FORMAT!r}")
+
+    def load(name: str) -> np.ndarray:
+        with Image.open(truth_dir / name) as img:
+            return image_to_array(img, resolution, channels)
+
+    pairs = []
+    for pair in doc["pairs"]:
+        pairs.append({**pair, "start_image": load(pair["start"]["image"]), "end_image": load(pair["end"]["image"]),
+                      "t": np.array([f["t"] for f in pair["frames"]]),
+                      "truth": np.stack([load(f["image"]) for f in pair["frames"]]),
+                      "truth_params": [f["params"] for f in pair["frames"]]})
+    return pairs
+
+
+def _summary(psnr: np.ndarray, ssim: np.ndarray) -> dict:
+    psnr = np.minimum(psnr, 99.0)
+    return {"psnr": round(float(psnr.mean()), 3), "ssim": round(float(ssim.mean()), 4),
+            "psnr_p10": round(float(np.percentile(psnr, 10)), 3), "frames": int(len(psnr))}
+
+
+def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0.5,
+             sheet: str | Path | None = None, sheet_pairs: int = 6) -> dict:
+    """Report dict: per method PSNR (dB), SSIM, p10 PSNR; pacing error (spacing units) and
+    confidence ECE / AUROC / accept-reject confusion for the latent routes."""
+    pairs = load_truth(truth_dir, engine.resolution, engine.channels)
+    if not pairs:
+        raise ValueError(f"{truth_dir}: the truth set has no pairs")
+    tau = engine.tau if engine.tau is not None else 0.90
+    got = {m: {"psnr": [], "ssim": []} for m in METHODS}
+    pacing = {"straight": [], "geodesic": []}
+    conf = {"straight": ([], []), "geodesic": ([], [])}
+    rows = []
+    for pair in pairs:
+        truth, t = pair["truth"], pair["t"]
+        outs = {"dissolve": (1 - t)[:, None, None, None] * pair["start_image"] + t[:, None, None, None] * pair["end_image"],
+                "ceiling": engine.decode(engine.encode(truth))}
+        for route in ("straight", "geodesic"):
+            ans = engine.between(Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"]),
+                                 frames=len(t), route=route, min_confidence=min_confidence)
+            outs[route] = np.stack([f.image for f in ans.frames])
+            shown = np.array([engine.space.vector(f.params) for f in ans.frames])
+            want = np.array([engine.space.vector(p) for p in pair["truth_params"]])
+            pacing[route] += list(engine.space.distance(shown, want, engine.scale))
+            if engine.confidence is not None:
+                conf[route][0].extend(f.confidence for f in ans.frames)
+        for m in METHODS:
+            got[m]["psnr"].append(psnr_batch(outs[m], truth))
+            got[m]["ssim"].append(ssim_batch(outs[m], truth))
+        for route in ("straight", "geodesic"):
+            conf[route][1].extend(got[route]["ssim"][-1] >= tau)
+        if len(rows) < sheet_pairs:
+            rows.append((truth, outs))
+    report: dict = {"pairs": len(pairs), "frames_per_pair": int(len(pairs[0]["t"])), "tau": tau,
+                    "min_confidence": min_confidence, "methods": {}}
+    for m in METHODS:
+        report["methods"][m] = _summary(np.concatenate(got[m]["psnr"]), np.concatenate(got[m]["ssim"]))
+    for route in ("straight", "geodesic"):
+        report["methods"][route]["pacing_error"] = round(float(np.mean(pacing[route])), 4)
+        prob, faithful = np.asarray(conf[route][0], dtype=float), np.asarray(conf[route][1], dtype=float)
+        if len(prob):
+            report["methods"][route]["confidence"] = confidence_summary(prob, faithful, min_confidence)
+    geo, ceil = report["methods"]["geodesic"], report["methods"]["ceiling"]
+    report["geodesic_below_ceiling_db"] = round(ceil["psnr"] - geo["psnr"], 3)
+    if sheet is not None:
+        contact_sheet(rows, sheet)
+        report["contact_sheet"] = str(sheet)
+    return report
+
+
+def confidence_summary(prob: np.ndarray, faithful: np.ndarray, min_confidence: float) -> dict:
+    """ECE (15 bins), AUROC for telling unfaithful frames, and the accept/reject confusion."""
+    accepted = prob >= min_confidence
+    bad, good = faithful == 0, faithful == 1
+    return {"ece": round(ece(prob, faithful, 15), 4),
+            "auroc": round(float(auroc(prob, faithful)), 4) if bad.any() and good.any() else None,
+            "below_tau": int(bad.sum()), "at_or_above_tau": int(good.sum()),
+            "rejected_below_tau": int((~accepted & bad).sum()), "accepted_below_tau": int((accepted & bad).sum()),
+            "accepted_above_tau": int((accepted & good).sum()), "rejected_above_tau": int((~accepted & good).sum()),
+            "reject_rate_below_tau": round(float((~accepted[bad]).mean()), 4) if bad.any() else None,
+            "keep_rate_above_tau": round(float(accepted[good].mean()), 4) if good.any() else None}
+
+
+def contact_sheet(rows: list, out: str | Path, *, gap: int = 2) -> Path:
+    """PNG grid: per pair, rows truth / dissolve / straight / geodesic, frames left to right."""
+    labels = ("truth", "dissolve", "straight", "geodesic")
+    blocks = []
+    for truth, outs in rows:
+        for lab in labels:
+            strip = truth if lab == "truth" else outs[lab]
+            blocks.append(np.concatenate([np.pad(f, ((gap, gap), (gap, gap), (0, 0)), constant_values=1.0)
+                                          for f in strip], axis=1))
+        blocks.append(np.ones((gap * 3, blocks[-1].shape[1], blocks[-1].shape[2]), dtype=np.float32))
+    sheet = np.concatenate(blocks, axis=0)
+    arr = np.round(np.clip(sheet, 0, 1) * 255).astype(np.uint8)
+    img = Image.fromarray(arr[..., 0] if arr.shape[2] == 1 else arr)
+    out = Path(out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    img.save(out)
+    return out
+
+
+def format_table(report: dict) -> str:
+    lines = [f"{'method':<10} {'PSNR dB':>8} {'SSIM':>7} {'p10 dB':>7} {'pacing':>7} {'ECE':>6} {'AUROC':>6}"]
+    for m in METHODS:
+        r = report["methods"][m]
+        c = r.get("confidence", {})
+        pace = f"{r['pacing_error']:.3f}" if "pacing_error" in r else "-"
+        e = f"{c['ece']:.3f}" if c else "-"
+        a = f"{c['auroc']:.3f}" if c and c.get("auroc") is not None else "-"
+        lines.append(f"{m:<10} {r['psnr']:8.2f} {r['ssim']:7.4f} {r['psnr_p10']:7.2f} {pace:>7} {e:>6} {a:>6}")
+    return "\n".join(lines)
