@@ -1,0 +1,226 @@
+"""The wire contract (pydantic), named by role: *Request is what a caller sends, *Out what it gets.
+
+Requests are strict (no string-to-number coercion), refuse unknown keys and refuse NaN and
+infinities. Limits that depend on the service's Settings (max_frames, max_fill_targets...) are
+checked by the routes, which name the setting in the message.
+"""
+from __future__ import annotations
+
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+NOTICE = "frames are synthesized by a learned model, not captured"
+ROUTES = ("geodesic", "straight")
+JOB_STATES = ("queued", "running", "done", "failed", "cancelled")
+RESOLUTIONS = (16, 32, 64, 128, 256)
+
+_EXAMPLE_PARAMS_A = {"lamp_azimuth": 30.0, "lamp_elevation": 40.0}
+_EXAMPLE_PARAMS_B = {"lamp_azimuth": 120.0, "lamp_elevation": 60.0}
+
+
+class _Request(BaseModel):
+    model_config = ConfigDict(strict=True, extra="forbid", allow_inf_nan=False)
+
+
+class _Out(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+# -- errors -------------------------------------------------------------------------------------
+class ErrorDetail(_Out):
+    code: str = Field(description="stable machine-readable code, e.g. 'model_not_found'")
+    message: str = Field(description="what went wrong, naming the bad value and the allowed range")
+    field: str | None = Field(None, description="the request field at fault, dotted (e.g. 'start.image')")
+
+
+class ErrorOut(_Out):
+    error: ErrorDetail
+
+    model_config = ConfigDict(json_schema_extra={"examples": [{"error": {
+        "code": "model_not_found", "message": "no model named 'tile' in the registry", "field": "name"}}]})
+
+
+# -- between ------------------------------------------------------------------------------------
+class EndRequest(_Request):
+    """One end of a route: an image (base64 PNG or JPEG) or settings by name, exactly one."""
+    image: str | None = Field(None, description="base64 PNG or JPEG (a data:image/...;base64, prefix is allowed)")
+    params: dict[str, float] | None = Field(None, description="settings by parameter name, in their units")
+
+    @model_validator(mode="after")
+    def _exactly_one(self) -> "EndRequest":
+        if (self.image is None) == (self.params is None):
+            raise ValueError("an end needs exactly one of 'image' or 'params'")
+        return self
+
+
+class BetweenRequest(_Request):
+    start: EndRequest
+    end: EndRequest
+    frames: int = Field(8, ge=1, description="in-between frames, ends excluded (at most max_frames)")
+    route: Literal["geodesic", "straight"] = "geodesic"
+    min_confidence: float = Field(0.5, ge=0.0, le=1.0, description="frames below it are marked rejected")
+    version: int | None = Field(None, ge=1, description="model version (default: the latest)")
+
+    model_config = ConfigDict(json_schema_extra={"examples": [
+        {"start": {"params": _EXAMPLE_PARAMS_A}, "end": {"params": _EXAMPLE_PARAMS_B}, "frames": 8,
+         "route": "geodesic", "min_confidence": 0.5},
+        {"start": {"image": "iVBORw0KGgo...(base64 PNG)"}, "end": {"params": _EXAMPLE_PARAMS_B}, "frames": 4}]})
+
+
+class FrameOut(_Out):
+    index: int = Field(description="1-based position on the route")
+    t: float = Field(description="fraction of the route's length, i / (frames + 1)")
+    image: str = Field(description="base64 PNG at the model's resolution")
+    confidence: float | None = Field(description="calibrated probability that SSIM vs the true view >= tau; "
+                                                 "null when the model has no calibration")
+    accepted: bool
+    params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
+
+
+class BetweenOut(_Out):
+    model: str
+    version: int
+    route: str
+    frames: list[FrameOut]
+    accepted: int
+    rejected: int
+    start_params: dict[str, float]
+    end_params: dict[str, float]
+    synthesized: Literal[True] = True
+    notice: str = NOTICE
+
+
+# -- fill ---------------------------------------------------------------------------------------
+class FillRequest(_Request):
+    targets: list[dict[str, float]] = Field(min_length=1, description="settings of each missing view "
+                                                                      "(at most max_fill_targets)")
+    min_confidence: float = Field(0.5, ge=0.0, le=1.0)
+    version: int | None = Field(None, ge=1)
+    as_job: bool = Field(False, description="run as a job even when small enough to answer at once")
+
+    model_config = ConfigDict(json_schema_extra={"examples": [
+        {"targets": [_EXAMPLE_PARAMS_A, _EXAMPLE_PARAMS_B], "min_confidence": 0.5}]})
+
+
+class FillFrameOut(_Out):
+    index: int = Field(description="1-based position in the request's targets")
+    target: dict[str, float] = Field(description="the settings asked for")
+    image: str = Field(description="base64 PNG at the model's resolution")
+    confidence: float | None
+    accepted: bool
+    params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
+
+
+class FillOut(_Out):
+    model: str
+    version: int
+    frames: list[FillFrameOut]
+    accepted: int
+    rejected: int
+    synthesized: Literal[True] = True
+    notice: str = NOTICE
+
+
+# -- jobs ---------------------------------------------------------------------------------------
+class ProgressOut(_Out):
+    done: int
+    total: int
+
+
+class JobOut(_Out):
+    id: str
+    kind: Literal["fill", "training"]
+    state: Literal["queued", "running", "done", "failed", "cancelled"]
+    progress: ProgressOut
+    created: str = Field(description="ISO-8601 UTC")
+    started: str | None
+    finished: str | None
+    error: ErrorDetail | None
+    model: str | None
+    version: int | None
+    result: str | None = Field(description="where the result is served once the job is done")
+
+
+class TrainingRequest(_Request):
+    scene: str = Field(description="path of a scene folder on the server")
+    name: str = Field(description="model name to register the result under")
+    steps: int | None = Field(None, ge=1, description="training steps (default: the full schedule)")
+    budget_seconds: float | None = Field(None, gt=0, description="wall-clock cap on training, seconds")
+    seed: int = Field(0, ge=0)
+    resolution: Literal[16, 32, 64, 128, 256] = Field(64, description="pixels per side")
+
+    model_config = ConfigDict(json_schema_extra={"examples": [
+        {"scene": "/data/scenes/relief-tile", "name": "relief-tile", "budget_seconds": 600, "resolution": 64}]})
+
+
+class TrainingOut(_Out):
+    model: str
+    version: int
+    created: str
+    hash: str
+    metrics: dict
+
+
+# -- models -------------------------------------------------------------------------------------
+class ModelSummaryOut(_Out):
+    name: str
+    latest_version: int
+    versions: int
+    latest_created: str
+
+
+class ModelListOut(_Out):
+    models: list[ModelSummaryOut]
+
+
+class VersionOut(_Out):
+    version: int
+    created: str
+    hash: str
+    metrics: dict
+
+
+class ParameterOut(_Out):
+    name: str
+    unit: str
+    min: float
+    max: float
+    periodic: bool
+
+
+class CalibrationOut(_Out):
+    fitted: bool = Field(description="false: frames carry confidence null and are all accepted")
+    tau: float | None = Field(description="SSIM threshold the confidence refers to")
+    method: str | None = Field(description="'platt' or 'isotonic'")
+    signals: list[str]
+    ece: float | None = Field(description="expected calibration error (15 bins) on held-out frames")
+    auroc: float | None
+    status: str | None
+
+
+class ModelOut(_Out):
+    name: str
+    latest_version: int
+    version: int = Field(description="the version the parameter spec and calibration below describe")
+    versions: list[VersionOut]
+    parameters: list[ParameterOut]
+    resolution: int
+    channels: int
+    metrics: dict
+    calibration: CalibrationOut
+
+
+class DeletedOut(_Out):
+    model: str
+    version: int
+    deleted: Literal[True] = True
+
+
+class HealthOut(_Out):
+    status: str
+
+
+class ReadyOut(_Out):
+    status: str
+    generation: int
