@@ -1,0 +1,219 @@
+"""Model routes: list, describe, delete, and the frame answers (between, upload form, fill)."""
+from __future__ import annotations
+
+from typing import Annotated, Literal, Mapping, Sequence
+
+from fastapi import APIRouter, File, Form, Query, Request, UploadFile
+from fastapi import Path as PathParam
+from fastapi.responses import JSONResponse
+from starlette.concurrency import run_in_threadpool
+
+from models.engine import Endpoint
+from models.params import ParamSpace
+
+from ..deps import ApiKeyDep, ModelCache, ModelName, Services, ServicesDep, note
+from ..errors import BadInput
+from ..imaging import decode_base64, open_image, to_model_array
+from ..registry import ModelVersion
+from ..schemas import (BetweenOut, BetweenRequest, DeletedOut, EndRequest, FillOut, FillRequest, JobOut,
+                       ModelListOut, ModelOut)
+from .common import Answer, errors, frame_data, media, respond
+
+router = APIRouter(prefix="/v1", tags=["models"])
+
+_FRAME_EXAMPLE = {"index": 1, "t": 0.1111, "image": "iVBORw0KGgo...", "confidence": 0.93, "accepted": True,
+                  "params": {"lamp_azimuth": 40.1, "lamp_elevation": 42.3}}
+
+
+# -- helpers (blocking ones run on a thread, torch ones on the inference pool) -----------------
+def _check_params(space: ParamSpace, values: Mapping[str, float], field: str) -> None:
+    try:
+        space.vector(values)
+    except ValueError as exc:
+        raise BadInput(f"{field}: {exc}", field=field, code="invalid_params") from None
+
+
+def _decode_end(end: EndRequest, field: str, max_image_pixels: int):
+    """The end as a decoded PIL image or as its settings mapping."""
+    if end.image is None:
+        return end.params
+    data = decode_base64(end.image, field=f"{field}.image")
+    return open_image(data, field=f"{field}.image", max_image_pixels=max_image_pixels)
+
+
+def _endpoint(end, engine) -> Endpoint:
+    if isinstance(end, Mapping):
+        return Endpoint(params=dict(end))
+    return Endpoint(image=to_model_array(end, engine.resolution, engine.channels))
+
+
+def _between(cache: ModelCache, entry: ModelVersion, start, end, frames: int, route: str,
+             min_confidence: float) -> Answer:
+    engine = cache.engine(entry)
+    ans = engine.between(_endpoint(start, engine), _endpoint(end, engine), frames=frames, route=route,
+                         min_confidence=min_confidence)
+    return Answer(kind="between", model=entry.name, version=entry.version, frames=frame_data(ans.frames),
+                  route=ans.route, start_params=ans.start_params, end_params=ans.end_params)
+
+
+def fill_chunk(cache: ModelCache, entry: ModelVersion, targets: Sequence[Mapping[str, float]],
+               min_confidence: float, offset: int = 0):
+    """Frames for targets[offset:offset+len]; runs on the inference pool."""
+    engine = cache.engine(entry)
+    return frame_data(engine.fill(targets, min_confidence=min_confidence), targets, offset=offset)
+
+
+def _frame_limit(services: Services, frames: int) -> None:
+    limit = services.settings.max_frames
+    if frames > limit:
+        raise BadInput(f"frames: {frames} is over the limit; allowed 1 to max_frames={limit}", field="frames",
+                       code="too_many_frames")
+
+
+async def _answer_between(request: Request, services: Services, name: str, start, end, *, frames: int,
+                          route: str, min_confidence: float, version: int | None):
+    entry = await run_in_threadpool(services.cache.lookup, name, version)
+    space = await run_in_threadpool(services.cache.space, entry)
+    for side, value in (("start", start), ("end", end)):
+        if isinstance(value, Mapping):
+            _check_params(space, value, f"{side}.params")
+    answer = await services.pool.run(_between, services.cache, entry, start, end, frames, route, min_confidence)
+    services.metrics.frames(entry.name, len(answer.frames), answer.rejected)
+    note(request, model=entry.name, version=entry.version, frames=len(answer.frames), rejected=answer.rejected)
+    return respond(request, answer)
+
+
+# -- routes -------------------------------------------------------------------------------------
+@router.get("/models", operation_id="list_models", response_model=ModelListOut,
+            responses=errors(503), summary="Every registered model and its latest version")
+def list_models(services: ServicesDep) -> ModelListOut:
+    rows = services.registry().list_models()
+    return ModelListOut(models=[{"name": r.name, "latest_version": r.latest_version, "versions": r.n_versions,
+                                 "latest_created": r.latest_created} for r in rows])
+
+
+@router.get("/models/{name}", operation_id="get_model", response_model=ModelOut,
+            responses=errors(404, 422, 503), summary="Versions, parameter spec, metrics, calibration")
+def get_model(name: ModelName, services: ServicesDep,
+              version: Annotated[int | None, Query(ge=1, description="version to describe (default: latest)")]
+              = None) -> ModelOut:
+    registry = services.registry()
+    versions = registry.versions(name)
+    chosen = registry.get(name, version)
+    manifest = services.cache.manifest(chosen)
+    conf = manifest.get("confidence")
+    report = chosen.metrics.get("confidence") if isinstance(chosen.metrics.get("confidence"), dict) else {}
+    calibration = {
+        "fitted": conf is not None,
+        "tau": (conf or {}).get("tau", report.get("tau")),
+        "method": ((conf or {}).get("model") or {}).get("calibrator", {}).get("method") or report.get("method"),
+        "signals": list((conf or {}).get("signals") or []),
+        "ece": report.get("ece"), "auroc": report.get("auroc"),
+        "status": report.get("status") or ("fitted" if conf else "not calibrated"),
+    }
+    return ModelOut(name=name, latest_version=versions[-1].version, version=chosen.version,
+                    versions=[{"version": v.version, "created": v.created, "hash": v.hash, "metrics": v.metrics}
+                              for v in versions],
+                    parameters=[{"name": p["name"], "unit": p.get("unit", ""), "min": p["min"], "max": p["max"],
+                                 "periodic": bool(p.get("periodic", False))} for p in manifest["space"]],
+                    resolution=int(manifest["resolution"]),
+                    channels=int(manifest["channels"]), metrics=chosen.metrics, calibration=calibration)
+
+
+@router.delete("/models/{name}/{version}", operation_id="delete_model_version", response_model=DeletedOut,
+               responses=errors(401, 404, 422, 503), summary="Delete one version (API key)")
+def delete_model_version(key: ApiKeyDep, name: ModelName, version: Annotated[int, PathParam(ge=1)],
+                         services: ServicesDep, request: Request) -> DeletedOut:
+    # the key comes first in the signature, so an unauthenticated caller learns nothing else
+    services.registry().delete(name, version)
+    note(request, model=name, version=version, key=key)
+    return DeletedOut(model=name, version=version)
+
+
+@router.post("/models/{name}/between", operation_id="between", response_model=BetweenOut,
+             responses={200: media("in-between frames (JSON, or a ZIP of PNGs with manifest.json on "
+                                   "Accept: application/zip)", zip_too=True),
+                        **errors(400, 404, 413, 422, 503)},
+             summary="Frames between two ends (images or settings)")
+async def between(name: ModelName, body: BetweenRequest, request: Request, services: ServicesDep):
+    _frame_limit(services, body.frames)
+    limit = services.settings.max_image_pixels
+    start = await run_in_threadpool(_decode_end, body.start, "start", limit)
+    end = await run_in_threadpool(_decode_end, body.end, "end", limit)
+    return await _answer_between(request, services, name, start, end, frames=body.frames, route=body.route,
+                                 min_confidence=body.min_confidence, version=body.version)
+
+
+_UPLOAD_EXAMPLE = {"start": "(PNG or JPEG file)", "end": "(PNG or JPEG file)", "frames": 8, "route": "geodesic",
+                   "min_confidence": 0.5}
+
+
+@router.post("/models/{name}/between/upload", operation_id="between_upload", response_model=BetweenOut,
+             responses={200: media("as for between", zip_too=True), **errors(400, 404, 413, 422, 503)},
+             summary="Frames between two uploaded image files (multipart form)",
+             openapi_extra={"requestBody": {"content": {"multipart/form-data": {"example": _UPLOAD_EXAMPLE}}}})
+async def between_upload(
+        name: ModelName, request: Request, services: ServicesDep,
+        start: Annotated[UploadFile, File(description="PNG or JPEG of the first end")],
+        end: Annotated[UploadFile, File(description="PNG or JPEG of the last end")],
+        frames: Annotated[int, Form(ge=1, description="in-between frames (at most max_frames)")] = 8,
+        route: Annotated[Literal["geodesic", "straight"], Form()] = "geodesic",
+        min_confidence: Annotated[float, Form(ge=0.0, le=1.0, allow_inf_nan=False)] = 0.5,
+        version: Annotated[int | None, Form(ge=1)] = None):
+    _frame_limit(services, frames)
+    limit = services.settings.max_image_pixels
+    images = []
+    for field, upload in (("start", start), ("end", end)):
+        data = await upload.read()
+        if not data:
+            raise BadInput(f"{field}: the uploaded file is empty", field=field, code="invalid_image")
+        images.append(await run_in_threadpool(lambda d=data, f=field: open_image(d, field=f,
+                                                                                 max_image_pixels=limit)))
+    return await _answer_between(request, services, name, images[0], images[1], frames=frames, route=route,
+                                 min_confidence=min_confidence, version=version)
+
+
+@router.post("/models/{name}/fill", operation_id="fill", response_model=FillOut,
+             responses={200: media("one frame per target (JSON, or a ZIP on Accept: application/zip)",
+                                   zip_too=True),
+                        202: {"model": JobOut, "description": "too many targets to answer at once (or as_job): "
+                                                              "a job was queued; poll Location"},
+                        **errors(400, 404, 413, 422, 503)},
+             summary="Frames at given settings (missing views); large batches run as jobs")
+async def fill(name: ModelName, body: FillRequest, request: Request, services: ServicesDep):
+    s = services.settings
+    n = len(body.targets)
+    if n > s.max_fill_targets:
+        raise BadInput(f"targets: {n} targets is over the limit; allowed 1 to max_fill_targets="
+                       f"{s.max_fill_targets}", field="targets", code="too_many_targets")
+    entry = await run_in_threadpool(services.cache.lookup, name, body.version)
+    space = await run_in_threadpool(services.cache.space, entry)
+
+    def check_all() -> None:
+        for i, target in enumerate(body.targets):
+            _check_params(space, target, f"targets[{i}]")
+
+    await run_in_threadpool(check_all)
+    targets, min_conf = body.targets, body.min_confidence
+    if n <= s.max_fill_sync and not body.as_job:
+        frames = await services.pool.run(fill_chunk, services.cache, entry, targets, min_conf)
+        answer = Answer(kind="fill", model=entry.name, version=entry.version, frames=frames)
+        services.metrics.frames(entry.name, len(frames), answer.rejected)
+        note(request, model=entry.name, version=entry.version, frames=len(frames), rejected=answer.rejected)
+        return respond(request, answer)
+
+    chunk = s.max_fill_sync
+    cache, metrics = services.cache, services.metrics
+
+    def work(ctx) -> Answer:
+        frames = []
+        for lo in range(0, n, chunk):
+            frames += ctx.compute(fill_chunk, cache, entry, targets[lo:lo + chunk], min_conf, lo)
+            ctx.progress(len(frames))
+        answer = Answer(kind="fill", model=entry.name, version=entry.version, frames=frames)
+        metrics.frames(entry.name, len(frames), answer.rejected)
+        return answer
+
+    job = services.jobs.submit("fill", work, total=n, model=entry.name, version=entry.version)
+    note(request, model=entry.name, version=entry.version, job=job.id)
+    return JSONResponse(job.to_dict(), status_code=202, headers={"Location": f"/v1/jobs/{job.id}"})
