@@ -1,0 +1,235 @@
+"""`geotween serve` and `geotween fill`, registered into the CLI by `add_commands(subparsers)`.
+
+`fill NAME TARGETS.csv --out DIR` answers one frame per CSV row (header = parameter names) with
+the local engine from the registry, or with a running service when --url is given; it writes the
+accepted frames as PNG plus report.csv and report.json (confidence per target). Exit 2 on bad input.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import json
+import logging
+import math
+import sys
+from pathlib import Path
+from typing import Callable, Mapping, Sequence, TextIO
+
+from .cli import EXIT_BAD_INPUT, EXIT_OK, UsageError
+
+NOTICE = "frames are synthesized by a learned model, not captured"
+EXIT_SERVICE = 1  # the service could not be reached, or failed on its side
+
+
+# -- helpers other commands reuse ---------------------------------------------------------------
+def open_engine(registry, name: str, version: int | None = None):
+    """(Engine, ModelVersion) of a registered model, latest version when `version` is None."""
+    from models.engine import Engine
+
+    entry = registry.get(name, version)
+    return Engine.load(entry.path), entry
+
+
+def client_between(url: str, name: str, start, end, *, frames: int = 8, route: str = "geodesic",
+                   min_confidence: float = 0.5, version: int | None = None, api_key: str | None = None):
+    """between through a running service; a refused request becomes a UsageError (exit 2)."""
+    from .client import Client, ClientError
+
+    try:
+        with Client(url, api_key=api_key) as client:
+            return client.between(name, start, end, frames=frames, route=route, min_confidence=min_confidence,
+                                  version=version)
+    except ClientError as exc:
+        raise UsageError(f"{url}: {exc}") from None
+
+
+class ProgressBar:
+    """A one-line text progress bar (default on stderr); `width` in characters."""
+
+    def __init__(self, label: str, *, stream: TextIO | None = None, width: int = 30):
+        self.label, self.stream, self.width = label, stream or sys.stderr, width
+        self._last: tuple[int, int] | None = None
+
+    def __call__(self, done: int, total: int) -> None:
+        if (done, total) == self._last:
+            return
+        self._last = (done, total)
+        filled = self.width * done // total if total else 0
+        self.stream.write(f"\r{self.label} [{'#' * filled}{'.' * (self.width - filled)}] {done}/{total}")
+        self.stream.flush()
+
+    def close(self) -> None:
+        if self._last is not None:
+            self.stream.write("\n")
+            self.stream.flush()
+
+
+def read_targets(path: str | Path, *, max_targets: int = 100_000) -> tuple[list[str], list[dict[str, float]]]:
+    """(names, targets) from a CSV whose header row names the parameters; UsageError names row and column."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise UsageError(f"{path}: cannot read the targets file ({exc})") from None
+    rows = list(csv.reader(text.splitlines()))
+    if not rows or not any(c.strip() for c in rows[0]):
+        raise UsageError(f"{path}: the header row (parameter names) is missing")
+    names = [c.strip() for c in rows[0]]
+    if any(not n for n in names) or len(set(names)) != len(names):
+        raise UsageError(f"{path}: header {names!r} must hold distinct, non-empty parameter names")
+    targets = []
+    for r, row in enumerate(rows[1:], start=1):
+        if not any(c.strip() for c in row):
+            continue  # blank lines carry no target
+        if len(row) != len(names):
+            raise UsageError(f"{path}: row {r} has {len(row)} values; the header names {len(names)}")
+        target = {}
+        for name, cell in zip(names, row):
+            try:
+                value = float(cell)
+            except ValueError:
+                raise UsageError(f"{path}: row {r}, column {name!r}: {cell!r} is not a number") from None
+            if not math.isfinite(value):
+                raise UsageError(f"{path}: row {r}, column {name!r}: {cell!r} is not a finite number")
+            target[name] = value
+        targets.append(target)
+    if not targets:
+        raise UsageError(f"{path}: no targets below the header")
+    if len(targets) > max_targets:
+        raise UsageError(f"{path}: {len(targets)} targets is over max_targets={max_targets}")
+    return names, targets
+
+
+# -- fill ---------------------------------------------------------------------------------------
+def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable[[int, int], None],
+                chunk: int = 32) -> dict:
+    from .imaging import encode_png
+    from .registry import Registry
+
+    engine, entry = open_engine(Registry.open(args.registry), args.name, args.version)
+    for i, target in enumerate(targets):  # every bad row is named before any work starts
+        try:
+            engine.space.vector(target)
+        except ValueError as exc:
+            raise UsageError(f"{args.targets}: row {i + 1}: {exc}") from None
+    frames = []
+    progress(0, len(targets))
+    for lo in range(0, len(targets), chunk):
+        for k, f in enumerate(engine.fill(targets[lo:lo + chunk], min_confidence=args.min_confidence)):
+            frames.append({"index": lo + k + 1, "target": dict(targets[lo + k]), "png": encode_png(f.image),
+                           "confidence": f.confidence, "accepted": f.accepted, "params": f.params})
+        progress(len(frames), len(targets))
+    return {"model": entry.name, "version": entry.version, "frames": frames}
+
+
+def _fill_remote(args, targets: Sequence[Mapping[str, float]], progress: Callable[[int, int], None]) -> dict:
+    from .client import Client
+
+    with Client(args.url) as client:
+        result = client.fill(args.name, targets, min_confidence=args.min_confidence, version=args.version,
+                             progress=progress)
+    frames = []
+    for f in result.frames:
+        buf = io.BytesIO()
+        f.pil().save(buf, format="PNG")
+        frames.append({"index": f.index, "target": f.target or dict(targets[f.index - 1]), "png": buf.getvalue(),
+                       "confidence": f.confidence, "accepted": f.accepted, "params": f.params})
+    return {"model": result.model, "version": result.version, "frames": frames}
+
+
+def _write_fill(out: Path, names: Sequence[str], answer: dict) -> dict:
+    out.mkdir(parents=True, exist_ok=True)
+    rows = []
+    for f in answer["frames"]:
+        file = f"target_{f['index']:04d}.png" if f["accepted"] else None
+        if file:
+            (out / file).write_bytes(f["png"])
+        rows.append({"index": f["index"], "target": f["target"], "confidence": f["confidence"],
+                     "accepted": f["accepted"], "file": file, "params": f["params"]})
+    accepted = sum(r["accepted"] for r in rows)
+    report = {"model": answer["model"], "version": answer["version"], "targets": len(rows), "accepted": accepted,
+              "rejected": len(rows) - accepted, "synthesized": True, "notice": NOTICE, "frames": rows}
+    (out / "report.json").write_text(json.dumps(report, indent=1))
+    with open(out / "report.csv", "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["index", *names, "confidence", "accepted", "file", *[f"shown_{n}" for n in names]])
+        for r in rows:
+            conf = "" if r["confidence"] is None else f"{r['confidence']:.6f}"
+            w.writerow([r["index"], *[r["target"].get(n, "") for n in names], conf, int(r["accepted"]),
+                        r["file"] or "", *[f"{r['params'].get(n, float('nan')):.6g}" for n in names]])
+    return report
+
+
+def cmd_fill(args) -> int:
+    from .client import ClientError
+
+    if not 0.0 <= args.min_confidence <= 1.0:
+        raise UsageError(f"--min-confidence: {args.min_confidence!r} is outside [0, 1]")
+    if args.version is not None and args.version < 1:
+        raise UsageError(f"--version: {args.version!r} is not allowed; expected an integer >= 1")
+    names, targets = read_targets(args.targets)
+    bar = ProgressBar(f"fill {args.name}")
+    try:
+        answer = (_fill_remote if args.url else _fill_local)(args, targets, bar)
+    except ClientError as exc:
+        bar.close()
+        print(f"geotween: {args.url}: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT if exc.status is not None and 400 <= exc.status < 500 else EXIT_SERVICE
+    bar.close()
+    report = _write_fill(Path(args.out), names, answer)
+    print(f"{report['accepted']} of {report['targets']} frames accepted, written to {args.out} "
+          f"(report.csv, report.json); {NOTICE}")
+    return EXIT_OK
+
+
+# -- serve --------------------------------------------------------------------------------------
+class JsonLines(logging.Formatter):
+    """One JSON object per line; access lines are already JSON and pass through."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        if record.name == "geotween.access":
+            return record.getMessage()
+        line = {"level": record.levelname.lower(), "logger": record.name, "message": record.getMessage()}
+        if record.exc_info:
+            line["exception"] = self.formatException(record.exc_info)
+        return json.dumps(line)
+
+
+def log_config(level: str = "INFO") -> dict:
+    """logging.config dict: geotween's and uvicorn's loggers as JSON lines on stderr."""
+    handler = {"class": "logging.StreamHandler", "formatter": "json", "stream": "ext://sys.stderr"}
+    quiet = {"handlers": ["stderr"], "level": level, "propagate": False}
+    return {"version": 1, "disable_existing_loggers": False,
+            "formatters": {"json": {"()": JsonLines}}, "handlers": {"stderr": handler},
+            "loggers": {"geotween": quiet, "uvicorn": quiet, "uvicorn.error": {"level": level},
+                        "uvicorn.access": {**quiet, "level": "WARNING"}}}
+
+
+def cmd_serve(args) -> int:
+    import uvicorn
+
+    from .api import create_app
+    from .settings import Settings
+
+    settings = Settings.load(**({"registry": args.registry} if args.registry else {}))
+    # the access log is ours (JSON, one line per request); uvicorn's would repeat it
+    uvicorn.run(create_app(settings), host=args.host, port=args.port, access_log=False,
+                log_config=log_config(), timeout_graceful_shutdown=10)
+    return EXIT_OK
+
+
+def add_commands(subparsers) -> None:
+    """Register `serve` and `fill` on the CLI's subparsers."""
+    s = subparsers.add_parser("serve", help="run the HTTP service (settings from GEOTWEEN_* variables)")
+    s.add_argument("--host", default="127.0.0.1", help="interface to listen on (default: loopback only)")
+    s.add_argument("--port", type=int, default=8000)
+    s.set_defaults(func=cmd_serve)
+
+    s = subparsers.add_parser("fill", help="frames at the settings of each CSV row (missing views)")
+    s.add_argument("name", help="model name")
+    s.add_argument("targets", help="CSV file; header = parameter names, one target per row")
+    s.add_argument("--out", required=True, help="folder for the PNG frames, report.csv and report.json")
+    s.add_argument("--url", default=None, help="use a running service instead of the local registry")
+    s.add_argument("--min-confidence", type=float, default=0.5, help="frames below it are not written")
+    s.add_argument("--version", type=int, default=None, help="model version (default: the latest)")
+    s.set_defaults(func=cmd_fill)
