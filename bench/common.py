@@ -1,0 +1,26 @@
+"""Shared set-up for the benchmark scripts: the demo scene rendered once into a cache folder."""
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+CACHE = Path(os.environ.get("GEOTWEEN_BENCH_CACHE", ROOT / "bench" / ".cache"))
+
+
+def demo_folders(size: int = 64) -> tuple[Path, Path]:
+    """(scene folder, truth folder) of the demo at `size` px, rendered on first use."""
+    from models.render import write_demo
+
+    out = CACHE / f"demo-{size}"
+    if not (out / "truth" / "truth.json").is_file():
+        write_demo(out, size=size)
+    return out / "scene", out / "truth"
+
+
+def set_threads() -> None:
+    import torch
+
+    torch.set_num_threads(min(4, os.cpu_count() or 1))
