@@ -27,12 +27,12 @@ from .triplets import Triplets, mine_triplets
 @dataclass
 class TrainConfig:
     steps: int = 2400
-    batch_triplets: int = 24
+    batch_triplets: int = 8
     extra_images: int = 8          # random images added to every batch beside the triplets'
-    lr: float = 2e-3
+    lr: float = 3e-3
     warmup: float = 0.03           # share of steps with a linear warm-up
     final_lr_share: float = 0.02   # cosine decay ends at this share of lr
-    w_collinear: float = 0.5
+    w_collinear: float = 1.0
     w_isometry: float = 0.05
     w_heads: float = 0.05
     triplet_span: float = 3.0      # spacing units

@@ -47,7 +47,7 @@ def test_straight_line_across_the_cylinder_leaves_the_manifold(small_engine):
     mid = slice(3, 6)
     geo_near = np.mean([f.signals["nearest"] for f in geo.frames[mid]])
     line_near = np.mean([f.signals["nearest"] for f in line.frames[mid]])
-    assert line_near > 2 * geo_near
+    assert line_near > 1.5 * geo_near
     assert np.mean([f.confidence for f in line.frames[mid]]) < np.mean([f.confidence for f in geo.frames[mid]])
 
 
