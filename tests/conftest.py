@@ -49,3 +49,15 @@ def small_engine(small_bundle):
     from models.engine import Engine
 
     return Engine.load(small_bundle)
+
+
+@pytest.fixture(scope="session")
+def service_bundle(tmp_path_factory) -> Path:
+    """One tiny uncalibrated bundle (16 px, 10 steps) for the service tests; registries copy it."""
+    from models.pipeline import train_bundle
+    from models.train import TrainConfig
+
+    out = tmp_path_factory.mktemp("service-tiny-bundle")
+    train_bundle(tiny_demo_scene(), out, name="tile", progress=None, calibrate=False,
+                 train_config=TrainConfig(steps=10, batch_triplets=6, extra_images=4))
+    return out

@@ -4,7 +4,6 @@ import io
 import json
 import logging
 import shutil
-import tempfile
 import struct
 import zipfile
 import zlib
@@ -17,12 +16,9 @@ from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 from pydantic import ValidationError
 
-from conftest import tiny_demo_scene
 from models.confidence import fit_confidence
 from models.engine import SIGNALS, Endpoint, Engine
-from models.pipeline import train_bundle
 from models.render import render_many
-from models.train import TrainConfig
 from service.api import create_app
 from service.registry import Registry
 from service.settings import Settings
@@ -32,16 +28,6 @@ LIMITS = dict(max_body_bytes=256 * 1024, max_image_pixels=1_000_000, max_frames=
               max_fill_targets=64)
 
 
-def shared_bundle(tmp_path_factory) -> Path:
-    """One tiny bundle (16 px, 10 steps) per test session, shared by the service test files
-    through the session's base temp folder; each registry gets a copy."""
-    folder = tmp_path_factory.getbasetemp() / "service-tiny-bundle"
-    if not (folder / "manifest.json").is_file():
-        staging = Path(tempfile.mkdtemp(dir=tmp_path_factory.getbasetemp()))
-        train_bundle(tiny_demo_scene(), staging, name="tile", progress=None, calibrate=False,
-                     train_config=TrainConfig(steps=10, batch_triplets=6, extra_images=4))
-        staging.rename(folder)
-    return folder
 
 
 def P(az, el):
@@ -87,11 +73,10 @@ def with_confidence(src: Path, folder: Path) -> None:
 
 
 @pytest.fixture(scope="module")
-def registry(tmp_path_factory):
+def registry(tmp_path_factory, service_bundle):
     root = tmp_path_factory.mktemp("registry")
     reg = Registry.open(root)
-    bundle = shared_bundle(tmp_path_factory)
-    entry = reg.publish("tile", lambda folder: shutil.copytree(bundle, folder, dirs_exist_ok=True))
+    entry = reg.publish("tile", lambda folder: shutil.copytree(service_bundle, folder, dirs_exist_ok=True))
     reg.publish("tile-cal", lambda folder: with_confidence(entry.path, folder))
     return reg
 

@@ -1,18 +1,14 @@
 """Jobs: the bounded pool, the in-memory job manager, fill jobs and training jobs over HTTP."""
 import shutil
-import tempfile
 import threading
 import time
-from pathlib import Path
 
 import pytest
 import torch
 from fastapi.testclient import TestClient
 
 from conftest import tiny_demo_scene
-from models.pipeline import train_bundle
 from models.scene import save_scene
-from models.train import TrainConfig
 from service.api import create_app
 from service.errors import Conflict, NotFound, Unavailable
 from service.jobs import InferencePool, JobManager
@@ -22,16 +18,6 @@ from service.settings import Settings
 KEY = "jobs-key-0123456789abcdef"
 
 
-def shared_bundle(tmp_path_factory) -> Path:
-    """One tiny bundle (16 px, 10 steps) per test session, shared by the service test files
-    through the session's base temp folder; each registry gets a copy."""
-    folder = tmp_path_factory.getbasetemp() / "service-tiny-bundle"
-    if not (folder / "manifest.json").is_file():
-        staging = Path(tempfile.mkdtemp(dir=tmp_path_factory.getbasetemp()))
-        train_bundle(tiny_demo_scene(), staging, name="tile", progress=None, calibrate=False,
-                     train_config=TrainConfig(steps=10, batch_triplets=6, extra_images=4))
-        staging.rename(folder)
-    return folder
 
 
 def P(az, el):
@@ -177,11 +163,10 @@ def test_finished_jobs_expire_after_retention_and_beyond_keep(pool):
 
 # -- over HTTP ----------------------------------------------------------------------------------
 @pytest.fixture(scope="module")
-def served(tmp_path_factory):
+def served(tmp_path_factory, service_bundle):
     root = tmp_path_factory.mktemp("registry")
     reg = Registry.open(root)
-    bundle = shared_bundle(tmp_path_factory)
-    reg.publish("tile", lambda f: shutil.copytree(bundle, f, dirs_exist_ok=True))
+    reg.publish("tile", lambda f: shutil.copytree(service_bundle, f, dirs_exist_ok=True))
     scene = tiny_demo_scene()
     scene_dir = save_scene(tmp_path_factory.mktemp("scene"), "tiny-tile", scene.space, scene.images, scene.params)
     app = create_app(Settings(registry=root, api_keys=[KEY], max_fill_sync=4, max_fill_targets=4096))

@@ -8,7 +8,6 @@ import socket
 import shutil
 import subprocess
 import sys
-import tempfile
 import threading
 import time
 import tomllib
@@ -20,10 +19,7 @@ import pytest
 from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 
-from conftest import tiny_demo_scene
-from models.pipeline import train_bundle
 from models.render import render_many
-from models.train import TrainConfig
 from service.client import Client, ClientError
 from service.registry import Registry
 
@@ -32,16 +28,6 @@ KEY = "live-key-0123456789abcdef"
 START_TIMEOUT = 90.0  # seconds: importing torch on a busy 2-core machine is slow
 
 
-def shared_bundle(tmp_path_factory) -> Path:
-    """One tiny bundle (16 px, 10 steps) per test session, shared by the service test files
-    through the session's base temp folder; each registry gets a copy."""
-    folder = tmp_path_factory.getbasetemp() / "service-tiny-bundle"
-    if not (folder / "manifest.json").is_file():
-        staging = Path(tempfile.mkdtemp(dir=tmp_path_factory.getbasetemp()))
-        train_bundle(tiny_demo_scene(), staging, name="tile", progress=None, calibrate=False,
-                     train_config=TrainConfig(steps=10, batch_triplets=6, extra_images=4))
-        staging.rename(folder)
-    return folder
 
 
 def dockerfile_cmd(path: Path = ROOT / "Dockerfile") -> list[str]:
@@ -73,10 +59,9 @@ def P(az, el):
 
 
 @pytest.fixture(scope="module")
-def server(tmp_path_factory):
+def server(tmp_path_factory, service_bundle):
     root = tmp_path_factory.mktemp("registry")
-    bundle = shared_bundle(tmp_path_factory)
-    Registry.open(root).publish("tile", lambda f: shutil.copytree(bundle, f, dirs_exist_ok=True))
+    Registry.open(root).publish("tile", lambda f: shutil.copytree(service_bundle, f, dirs_exist_ok=True))
     port = free_port()
     env = {**os.environ, "GEOTWEEN_REGISTRY": str(root), "GEOTWEEN_API_KEYS": KEY, "GEOTWEEN_MAX_FILL_SYNC": "4",
            "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}
