@@ -21,6 +21,7 @@ def demo_folders(size: int = 64) -> tuple[Path, Path]:
 
 
 def set_threads() -> None:
+    """torch threads: GEOTWEEN_BENCH_THREADS, else all cores (at most 4)."""
     import torch
 
-    torch.set_num_threads(min(4, os.cpu_count() or 1))
+    torch.set_num_threads(int(os.environ.get("GEOTWEEN_BENCH_THREADS", 0)) or min(4, os.cpu_count() or 1))
