@@ -180,7 +180,7 @@ def cmd_demo(args) -> int:
     from models.render import write_demo
 
     out = Path(args.out or tempfile.mkdtemp(prefix="geotween-demo-"))
-    print(f"1/2 rendering the demo scene (relief tile under a moving lamp) into {out}")
+    print(f"1/3 rendering the demo scene (relief tile under a moving lamp) into {out}")
     scene_dir, truth_dir = write_demo(out)
     print("2/3 training the demo model (CPU)")
     entry = train_into_registry(scene_dir, "relief-tile", _registry(args), resolution=64, latent_dim=None,
