@@ -140,7 +140,8 @@ def test_geodesic_beats_cross_dissolve_on_true_crops(pan_engine, photo):
         a, b = pan_views(photo, np.stack([start, end]))
         ans = pan_engine.between(Endpoint(image=a), Endpoint(image=b), frames=n, route="geodesic")
         frames = np.stack([f.image for f in ans.frames])
-        mix = (1.0 - t)[:, None, None, None] * a + t[:, None, None, None] * b  # cross-dissolve, the usual fallback (common practice)
+        # cross-dissolve of the two ends, the usual fallback (common practice)
+        mix = (1.0 - t)[:, None, None, None] * a + t[:, None, None, None] * b
         # PSNR by scikit-image's peak_signal_noise_ratio (scikit-image reference)
         geo.append(np.mean([peak_signal_noise_ratio(x, y, data_range=1.0) for x, y in zip(truth, frames)]))
         dissolve.append(np.mean([peak_signal_noise_ratio(x, y, data_range=1.0) for x, y in zip(truth, mix)]))
