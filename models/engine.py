@@ -52,14 +52,8 @@ class Frame:
     signals: dict[str, float] = field(default_factory=dict)
 
 
-@dataclass
-class Answer:
-    route: str
-    frames: list[Frame]
-    start_params: dict[str, float]
-    end_params: dict[str, float]
-    codes: np.ndarray          # (frames, d) codes of the frames
-    path_nodes: np.ndarray     # bank indices the geodesic passed through (empty for straight)
+class FrameCounts:
+    """accepted / rejected counts of anything with a `frames` list of accepted-flagged frames."""
 
     @property
     def accepted(self) -> int:
@@ -68,6 +62,16 @@ class Answer:
     @property
     def rejected(self) -> int:
         return len(self.frames) - self.accepted
+
+
+@dataclass
+class Answer(FrameCounts):
+    route: str
+    frames: list[Frame]
+    start_params: dict[str, float]
+    end_params: dict[str, float]
+    codes: np.ndarray          # (frames, d) codes of the frames
+    path_nodes: np.ndarray     # bank indices the geodesic passed through (empty for straight)
 
 
 class Engine:
@@ -182,7 +186,8 @@ class Engine:
         return relaxed, nodes
 
     # -- confidence ---------------------------------------------------------------------------
-    def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray) -> np.ndarray:
+    def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray,
+                shown: np.ndarray | None = None) -> np.ndarray:
         """(N, len(SIGNALS)) off-manifold signals, each larger = worse, in code-spacing units:
         cycle residual ||E(D(z)) - z||, distance to the nearest bank code, distance between the
         settings the frame shows and those it should show, and the RMS pixel change D(E(D(z)))."""
@@ -191,7 +196,7 @@ class Engine:
             img2 = to_images(self.model.decoder(torch.as_tensor(z2, dtype=torch.float32)))
         cycle = np.linalg.norm(z2 - codes, axis=1) / self.spacing
         nearest = self.graph.tree.query(self.graph.warp(codes), k=1)[0] / self.spacing
-        shown = self.settings_of(codes)
+        shown = self.settings_of(codes) if shown is None else shown
         settings = self.space.distance(shown, intended, self.scale)
         image_cycle = np.sqrt(np.mean((img2 - images) ** 2, axis=(1, 2, 3)))
         return np.stack([cycle, nearest, settings, image_cycle], axis=1)
@@ -203,9 +208,9 @@ class Engine:
 
     def _frames(self, codes, t, intended, min_confidence) -> list[Frame]:
         images = self.decode(codes)
-        sig = self.signals(codes, images, intended)
-        conf = self.score(sig)
         shown = self.settings_of(codes)
+        sig = self.signals(codes, images, intended, shown)
+        conf = self.score(sig)
         frames = []
         for i in range(len(codes)):
             c = None if conf is None else float(conf[i])

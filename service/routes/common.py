@@ -11,6 +11,8 @@ from typing import Sequence
 from fastapi import Request
 from fastapi.responses import JSONResponse, Response
 
+from models.engine import FrameCounts
+
 from ..imaging import encode_png, png_base64
 from ..schemas import NOTICE, ErrorOut
 
@@ -55,7 +57,7 @@ class FrameData:
 
 
 @dataclass
-class Answer:
+class Answer(FrameCounts):
     """A between or fill answer, independent of how it is sent."""
     kind: str                      # "between" | "fill"
     model: str
@@ -64,14 +66,6 @@ class Answer:
     route: str | None = None
     start_params: dict[str, float] = field(default_factory=dict)
     end_params: dict[str, float] = field(default_factory=dict)
-
-    @property
-    def accepted(self) -> int:
-        return sum(f.accepted for f in self.frames)
-
-    @property
-    def rejected(self) -> int:
-        return len(self.frames) - self.accepted
 
 
 def frame_data(frames: Sequence, targets: Sequence[dict] | None = None, *, offset: int = 0) -> list[FrameData]:
