@@ -1,10 +1,14 @@
-"""Fitting the confidence model at training time, on the held-out share.
+"""Fitting, at training time on the held-out share, what serving needs: the route's tube and the
+confidence model.
 
 Every held-out sample h whose settings lie (within tolerance) on the segment between two bank
 samples s and t gives frames with a known truth: the frame at fraction a of a route from s to t,
 by each route kind, and the frame that a settings request for p_h yields. The off-manifold
 signals of those frames, labelled by SSIM(frame, truth) >= tau, fit a combiner and a monotone
 calibrator (`models.confidence.fit_confidence`); ECE and AUROC are measured on rows not used to fit.
+The same bracketed held-out samples first choose the geodesic's tube radius (`Engine.tube`): the
+candidate whose route frames match the held-out truth best (mean PSNR), so the confidence is then
+fitted on the routes the model will serve.
 """
 from __future__ import annotations
 
@@ -13,36 +17,63 @@ import numpy as np
 from . import route as lroute
 from .bundle import Bundle
 from .confidence import fit_confidence
-from .engine import ROUTES, SIGNALS, Engine
-from .metrics import ssim_batch
+from .engine import ROUTES, Engine
+from .metrics import psnr_batch, ssim_batch
 from .triplets import mine_triplets
 
 DEFAULT_TAU = 0.90
+TUBES = (0.75, 1.0, 1.25, 1.5, 2.0)  # candidate tube radii, in bank spacings
+
+
+def bracketed(engine: Engine, holdout_params: np.ndarray, *, span: float = 6.0, tolerance: float = 0.15,
+              max_triplets: int = 400, seed: int = 0):
+    """Triplets (s, m, t, a) with s, t bank samples and m a held-out one on their segment; m is
+    indexed into the held-out share. At most max_triplets, drawn with `seed`."""
+    n_bank = len(engine.bundle.params)
+    allp = np.vstack([engine.bundle.params, holdout_params])
+    trip = mine_triplets(allp, engine.space, scale=engine.scale, span=span, tolerance=tolerance)
+    order = np.nonzero((trip.m >= n_bank) & (trip.s < n_bank) & (trip.t < n_bank))[0]
+    if len(order) > max_triplets:
+        order = np.sort(np.random.default_rng(seed).choice(order, size=max_triplets, replace=False))
+    return trip.s[order], trip.m[order] - n_bank, trip.t[order], trip.a[order]
+
+
+def route_codes(engine: Engine, s: np.ndarray, t: np.ndarray, a: np.ndarray, route: str) -> np.ndarray:
+    """(len(s), d) codes at fraction a of the route from bank code s to bank code t."""
+    codes = engine.bundle.codes
+    return np.array([lroute.at_t(engine.route_line(codes[i], codes[j], route)[0], [f])[0]
+                     for i, j, f in zip(s, t, a)]).reshape(len(s), codes.shape[1])
+
+
+def choose_tube(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
+                candidates=TUBES, seed: int = 0) -> tuple[float, dict]:
+    """Set engine.tube to the candidate whose geodesic frames best match the held-out truth
+    (mean PSNR; the smaller radius on a tie) and return it with the PSNR of every candidate."""
+    s, m, t, a = bracketed(engine, holdout_params, seed=seed)
+    if len(s) == 0:
+        return engine.tube, {}
+    scores = {}
+    for tube in candidates:
+        engine.tube = float(tube)
+        scores[float(tube)] = float(np.mean(psnr_batch(engine.decode(route_codes(engine, s, t, a, "geodesic")),
+                                                       holdout_images[m])))
+    best = max(scores, key=lambda c: (round(scores[c], 6), -c))
+    engine.tube = best
+    return best, {str(c): round(v, 3) for c, v in scores.items()}
 
 
 def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
                        span: float = 6.0, tolerance: float = 0.15, max_triplets: int = 400,
                        seed: int = 0) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Signals (N, len(SIGNALS)), SSIM (N,) against the truth, and each row's kind."""
-    bank_p = engine.bundle.params
-    n_bank = len(bank_p)
-    allp = np.vstack([bank_p, holdout_params])
-    trip = mine_triplets(allp, engine.space, scale=engine.scale, span=span, tolerance=tolerance)
-    keep = (trip.m >= n_bank) & (trip.s < n_bank) & (trip.t < n_bank)
-    order = np.nonzero(keep)[0]
-    rng = np.random.default_rng(seed)
-    if len(order) > max_triplets:
-        order = np.sort(rng.choice(order, size=max_triplets, replace=False))
+    """Signals (N, len(engine.signal_names)), SSIM (N,) against the truth, and each row's kind."""
+    s, m, t, a = bracketed(engine, holdout_params, span=span, tolerance=tolerance, max_triplets=max_triplets,
+                           seed=seed)
     codes, intended, truth, kinds = [], [], [], []
-    bank_codes = engine.bundle.codes
-    for j in order:
-        s, m, t, a = trip.s[j], trip.m[j], trip.t[j], trip.a[j]
-        for route in ROUTES:
-            line, _ = engine.route_line(bank_codes[s], bank_codes[t], route)
-            codes.append(lroute.at_t(line, [a])[0])
-            intended.append(allp[m])
-            truth.append(m - n_bank)
-            kinds.append(route)
+    for route in ROUTES:
+        codes += list(route_codes(engine, s, t, a, route))
+        intended += list(holdout_params[m])
+        truth += list(m)
+        kinds += [route] * len(s)
     fill_codes = engine.code_of_settings(holdout_params)
     codes += list(fill_codes)
     intended += list(holdout_params)
@@ -68,19 +99,23 @@ def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images:
     if len(outcome) < 12 or outcome.sum() < 3 or (1 - outcome).sum() < 3:
         # too few frames of one kind to fit: no confidence rather than a made-up one
         return None, {**base, "status": "not fitted: too few faithful or unfaithful held-out frames"}
-    model, report = fit_confidence(sig, outcome, names=list(SIGNALS), seed=seed)
+    names = list(engine.signal_names)
+    model, report = fit_confidence(sig, outcome, names=names, seed=seed)
     summary = {**base, "status": "fitted", "ece": report.get("ece"), "auroc": report.get("auroc"),
                "method": report.get("method"), "report": report}
-    return {"tau": tau, "signals": list(SIGNALS), "model": model.to_dict()}, summary
+    return {"tau": tau, "signals": names, "model": model.to_dict()}, summary
 
 
-def calibrate_bundle_confidence(result, scene, arrays: dict[str, np.ndarray], *, tau: float = DEFAULT_TAU
-                                ) -> tuple[dict | None, dict]:
-    """Calibrate straight after training, from the in-memory model and bank arrays."""
+def fit_serving(result, scene, arrays: dict[str, np.ndarray], *, tau: float = DEFAULT_TAU) -> dict:
+    """Straight after training, from the in-memory model and bank arrays: the route's tube and
+    the confidence model. Returns {"route", "confidence", "report"} for the bundle."""
     stored = {k: (np.round(np.clip(v, 0, 1) * 255).astype(np.uint8) if "images" in k else v)
               for k, v in arrays.items()}
     manifest = {"scale": [float(s) for s in result.scale], "resolution": result.model_config.resolution,
                 "channels": result.model_config.channels, "confidence": None}
-    engine = Engine(Bundle(manifest, result.model, scene.space, stored))
-    return calibrate_engine(engine, arrays["holdout_params"], arrays["holdout_images"], tau=tau,
-                            seed=result.train_config.seed)
+    engine = Engine(Bundle(manifest, result.model, scene.space, stored), tube=TUBES[0])
+    seed = result.train_config.seed
+    tube, by_tube = choose_tube(engine, arrays["holdout_params"], arrays["holdout_images"], seed=seed)
+    confidence, report = calibrate_engine(engine, arrays["holdout_params"], arrays["holdout_images"], tau=tau,
+                                          seed=seed)
+    return {"route": {"tube": tube, "holdout_psnr_by_tube": by_tube}, "confidence": confidence, "report": report}

@@ -3,11 +3,17 @@
 Ends are images (encoded) or settings (a local affine chart over the bank codes of the nearest
 samples in settings space, with the settings-to-code head as fallback). A geodesic route is the
 shortest path over the pruned kNN graph of bank codes, relaxed into a smooth curve (curve
-shortening), then resampled at equal arc length. Projecting every round back with z <- E(D(z))
-is available (project_rounds=True) but on the demo model it cost 1.4 dB and three times the
-time: the collinearity and isometry terms already keep the latent locally flat, so the relaxed
-curve stays near the bank codes, and the cycle residual is reported as a signal instead. Every frame carries the settings it shows (code-to-settings head) and a calibrated
-confidence. Frames are synthesized, not captured.
+shortening), pulled taut inside a tube around the bank codes (`route.taut`; radius in bank
+spacings, chosen per model on the held-out share), then resampled at equal arc length. Pulling
+taut means: where the chord between two points of the relaxed path stays that close to real
+samples, the route takes the chord, since detours through bank nodes cost pacing and sharpness;
+where the chord would leave the tube (a gap, a bend of the manifold) the route keeps the bend.
+
+Projecting every relaxation round back with z <- E(D(z)) is available (project_rounds=True), but
+on the demo model it cost 1.4 dB and three times the time: the collinearity and isometry terms
+keep the latent locally flat, so the cycle residual is reported as a signal instead. Every frame
+carries the settings it shows (code-to-settings head) and a calibrated confidence. Frames are
+synthesized, not captured.
 """
 from __future__ import annotations
 
@@ -23,11 +29,16 @@ from . import graph as lgraph
 from . import route as lroute
 from .bundle import Bundle, load_bundle
 from .confidence import ConfidenceModel
+from .nets import inference_copy
 from .train import to_images, to_tensor
 from .triplets import normalised_coords
 
 ROUTES = ("geodesic", "straight")
-SIGNALS = ("cycle", "nearest", "settings", "image_cycle")
+SIGNALS = ("cycle", "nearest", "settings", "image_cycle")  # every signal the engine can compute
+# what a new model's confidence is fitted on: image_cycle would cost a second decode per request
+# and adds nothing the cycle residual does not already carry (see bench/RESULTS.md)
+FITTED_SIGNALS = ("cycle", "nearest", "settings")
+DEFAULT_TUBE = 1.0  # bank spacings: a route keeps within one sample spacing of real samples
 
 
 @dataclass
@@ -77,14 +88,17 @@ class Answer(FrameCounts):
 class Engine:
     def __init__(self, bundle: Bundle, *, graph_k: int | None = None, relax_rounds: int = 20,
                  relax_step: float = 0.5, project_rounds: bool = False, chart_neighbours: int = 6,
-                 attach: int = 3):
+                 attach: int = 3, tube: float | str | None = "bundle"):
         self.bundle = bundle
-        self.model = bundle.model.eval()
+        self.model = inference_copy(bundle.model)  # the bundle's own model stays as trained
         self.space = bundle.space
         self.manifest = bundle.manifest
         self.scale = bundle.scale
         self.relax_rounds, self.relax_step, self.attach = relax_rounds, relax_step, attach
         self.project_rounds = project_rounds
+        # tube radius in bank spacings for pulling routes taut: "bundle" = the radius chosen on the
+        # held-out share at training time (1.0 for bundles without one); None = keep the path
+        self.tube = (bundle.manifest.get("route") or {}).get("tube", DEFAULT_TUBE) if tube == "bundle" else tube
         self.chart_neighbours = chart_neighbours
         bank_images = bundle.images()
         self.graph = lgraph.build_graph(bundle.codes, k=graph_k, params=bundle.params, space=self.space,
@@ -97,6 +111,12 @@ class Engine:
         conf = bundle.manifest.get("confidence")
         self.confidence = ConfidenceModel.from_dict(conf["model"]) if conf else None
         self.tau = float(conf["tau"]) if conf else None
+        # a model computes only the signals its confidence was fitted on (older bundles: all four)
+        self.signal_names = tuple(conf.get("signals", SIGNALS)) if conf else FITTED_SIGNALS
+        unknown = sorted(set(self.signal_names) - set(SIGNALS))
+        if unknown:
+            raise ValueError(f"confidence.signals: {unknown} are not signals this engine knows; "
+                             f"expected names from {list(SIGNALS)}")
 
     @classmethod
     def load(cls, path: str | Path, **kw) -> "Engine":
@@ -183,23 +203,31 @@ class Engine:
         dense = lroute.at_t(line, np.linspace(0.0, 1.0, 2 * len(line) - 1))
         relaxed = lroute.relax(dense, self.project if self.project_rounds else None,
                                rounds=self.relax_rounds, step=self.relax_step)
+        if self.tube is not None:  # last, so that every segment of the answer keeps within the tube
+            g = self.graph  # pulled in the graph's metric, where the tube is round
+            clearance = lambda w: g.tree.query(w, k=1)[0]  # noqa: E731
+            relaxed = relaxed[lroute.taut(g.warp(relaxed), clearance, self.tube * self.spacing,
+                                          step=0.25 * self.spacing)]
         return relaxed, nodes
 
     # -- confidence ---------------------------------------------------------------------------
     def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray,
                 shown: np.ndarray | None = None) -> np.ndarray:
-        """(N, len(SIGNALS)) off-manifold signals, each larger = worse, in code-spacing units:
-        cycle residual ||E(D(z)) - z||, distance to the nearest bank code, distance between the
-        settings the frame shows and those it should show, and the RMS pixel change D(E(D(z)))."""
+        """(N, len(self.signal_names)) off-manifold signals, each larger = worse: the cycle residual
+        ||E(D(z)) - z|| and the distance to the nearest bank code (both in code spacings), the
+        distance between the settings the frame shows and those it should show (settings
+        spacings), and the RMS pixel change of a second round trip D(E(D(z)))."""
+        names = self.signal_names
         with torch.inference_mode():
-            z2 = self.model.encoder(to_tensor(images)).double().numpy()
-            img2 = to_images(self.model.decoder(torch.as_tensor(z2, dtype=torch.float32)))
-        cycle = np.linalg.norm(z2 - codes, axis=1) / self.spacing
-        nearest = self.graph.tree.query(self.graph.warp(codes), k=1)[0] / self.spacing
-        shown = self.settings_of(codes) if shown is None else shown
-        settings = self.space.distance(shown, intended, self.scale)
-        image_cycle = np.sqrt(np.mean((img2 - images) ** 2, axis=(1, 2, 3)))
-        return np.stack([cycle, nearest, settings, image_cycle], axis=1)
+            z2 = self.model.encoder(to_tensor(images)).double().numpy() if {"cycle", "image_cycle"} & set(names) else None
+            img2 = (to_images(self.model.decoder(torch.as_tensor(z2, dtype=torch.float32)))
+                    if "image_cycle" in names else None)
+        make = {"cycle": lambda: np.linalg.norm(z2 - codes, axis=1) / self.spacing,
+                "nearest": lambda: self.graph.tree.query(self.graph.warp(codes), k=1)[0] / self.spacing,
+                "settings": lambda: self.space.distance(self.settings_of(codes) if shown is None else shown,
+                                                        intended, self.scale),
+                "image_cycle": lambda: np.sqrt(np.mean((img2 - images) ** 2, axis=(1, 2, 3)))}
+        return np.stack([make[n]() for n in names], axis=1).reshape(len(codes), len(names))
 
     def score(self, sig: np.ndarray) -> np.ndarray | None:
         if self.confidence is None:
@@ -216,7 +244,7 @@ class Engine:
             c = None if conf is None else float(conf[i])
             frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(shown[i]),
                                 confidence=c, accepted=c is None or c >= min_confidence,
-                                signals=dict(zip(SIGNALS, map(float, sig[i])))))
+                                signals=dict(zip(self.signal_names, map(float, sig[i])))))
         return frames
 
     def between(self, start: Endpoint, end: Endpoint, frames: int = 8, route: str = "geodesic",

@@ -28,18 +28,17 @@ def bank_arrays(result: TrainResult, scene: Scene) -> dict[str, np.ndarray]:
 def train_bundle(scene: Scene, out: str | Path, *, name: str, model_config: ModelConfig | None = None,
                  train_config: TrainConfig | None = None, progress: TextIO | None = sys.stderr,
                  on_step: Callable[[int, int], None] | None = None, calibrate: bool = True) -> dict:
-    """Train on `scene`, calibrate confidence on the held-out share, and write a complete bundle
-    to `out`; returns the manifest."""
+    """Train on `scene`; on the held-out share choose the route's tube and calibrate confidence;
+    write a complete bundle to `out`; returns the manifest."""
     result = train(scene, model_config, train_config, progress=progress, on_step=on_step)
     arrays = bank_arrays(result, scene)
-    confidence = None
+    confidence, extra = None, {"scene": scene.name}
     metrics = dict(result.metrics)
     if calibrate:
-        from .calibrate import calibrate_bundle_confidence
-        confidence, report = calibrate_bundle_confidence(result, scene, arrays,
-                                                         tau=result.train_config.confidence_tau)
-        metrics["confidence"] = report
+        from .calibrate import fit_serving
+        fitted = fit_serving(result, scene, arrays, tau=result.train_config.confidence_tau)
+        confidence, metrics["confidence"], extra["route"] = fitted["confidence"], fitted["report"], fitted["route"]
     return save_bundle(out, name=name, model=result.model, model_config=result.model_config,
                        train_config=result.train_config, space=scene.space, scale=result.scale,
                        arrays=arrays, metrics=metrics, confidence=confidence,
-                       extra={"scene": scene.name})
+                       extra=extra)

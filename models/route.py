@@ -107,9 +107,21 @@ def relax(points, project: Callable[[np.ndarray], np.ndarray] | None = None, *, 
     for _ in range(int(rounds)):
         mid = 0.5 * (p[:-2] + p[2:])
         p[1:-1] += step * (mid - p[1:-1])
-        p = at_t(p, np.linspace(0.0, 1.0, len(p)))
+        p = _respaced(p)
         p = _projected(p, project, moving)
     return p
+
+
+def _respaced(p: np.ndarray) -> np.ndarray:
+    """The same polyline's points at equal arc length, ends kept: at_t(p, linspace(0, 1, M)),
+    without its checks (relax calls it every round on points it made itself)."""
+    cum = np.concatenate(([0.0], np.cumsum(np.sqrt(np.sum(np.diff(p, axis=0) ** 2, axis=1)))))
+    if cum[-1] == 0.0:
+        return p
+    s = np.linspace(0.0, cum[-1], len(p))
+    out = np.column_stack([np.interp(s, cum, p[:, j]) for j in range(p.shape[1])])
+    out[0], out[-1] = p[0], p[-1]
+    return out
 
 
 def _projected(p: np.ndarray, project, moving: slice) -> np.ndarray:
@@ -123,3 +135,29 @@ def _projected(p: np.ndarray, project, moving: slice) -> np.ndarray:
     p = p.copy()
     p[moving] = moved
     return p
+
+
+def taut(points, clearance: Callable[[np.ndarray], np.ndarray], limit: float, *, step: float) -> np.ndarray:
+    """Indices of the vertices of an (M, d) polyline kept by pulling it taut inside a tube.
+
+    From each kept vertex the polyline jumps to the farthest later vertex whose straight segment
+    stays within `limit` everywhere, judged by `clearance` ((K, d) points -> (K,) distances to the
+    data) at samples at most `step` apart; the next vertex is always reachable. On a flat stretch
+    the route becomes the chord; where the chord would leave the tube (a gap, a bend of the
+    manifold) the route keeps the vertices that hold it near the data. Ends are always kept.
+    """
+    p = _points(points, least=1)
+    if not (limit > 0 and step > 0):
+        raise ValueError(f"limit, step: {limit!r}, {step!r} not allowed; expected both > 0")
+    keep, i, last = [0], 0, len(p) - 1
+    while i < last:
+        j = i + 1
+        for cand in range(last, i + 1, -1):
+            n = int(np.ceil(np.linalg.norm(p[cand] - p[i]) / step))
+            s = np.arange(1, n)[:, None] / n
+            if n < 2 or np.max(clearance(p[i] + s * (p[cand] - p[i]))) <= limit:
+                j = cand
+                break
+        keep.append(j)
+        i = j
+    return np.asarray(keep, dtype=np.int64)

@@ -71,8 +71,10 @@ def to_uint8(image: np.ndarray) -> np.ndarray:
     return np.round(np.clip(arr, 0.0, 1.0) * 255.0).astype(np.uint8)
 
 
-def encode_png(image: np.ndarray, *, compress_level: int = 6) -> bytes:
-    """(H, W, C) float in [0, 1] to PNG bytes (8-bit gray for C = 1, RGB for C = 3)."""
+def encode_png(image: np.ndarray, *, compress_level: int = 1) -> bytes:
+    """(H, W, C) float in [0, 1] to PNG bytes (8-bit gray for C = 1, RGB for C = 3).
+
+    zlib level 1: on 64 px frames a third less time than level 6 for about 10% more bytes."""
     buf = io.BytesIO()
     Image.fromarray(to_uint8(image)).save(buf, format="PNG", compress_level=compress_level)
     return buf.getvalue()

@@ -95,3 +95,39 @@ def test_calibration_is_stored_with_held_out_metrics(small_engine):
     assert report["status"] == "fitted"
     assert report["rows"] >= 50
     assert 0.0 <= report["ece"] <= 1.0 and 0.5 <= report["auroc"] <= 1.0
+
+
+def test_tube_is_chosen_on_the_held_out_share(small_engine):
+    from models.calibrate import TUBES
+
+    route = small_engine.manifest["route"]
+    scores = {float(k): v for k, v in route["holdout_psnr_by_tube"].items()}
+    assert sorted(scores) == sorted(TUBES)
+    assert route["tube"] == max(scores, key=lambda c: (scores[c], -c))
+    assert small_engine.tube == route["tube"]
+
+
+def test_a_new_model_computes_only_the_signals_it_was_fitted_on(small_engine):
+    from models.engine import FITTED_SIGNALS
+
+    assert small_engine.manifest["confidence"]["signals"] == list(FITTED_SIGNALS)
+    ans = small_engine.between(P(30, 30), P(120, 50), frames=3)
+    assert all(set(f.signals) == set(FITTED_SIGNALS) for f in ans.frames)
+
+
+def test_older_bundles_with_four_signals_still_score(small_bundle):
+    from models.bundle import load_bundle
+    from models.confidence import fit_confidence
+    from models.engine import SIGNALS, Engine
+
+    bundle = load_bundle(small_bundle)
+    rng = np.random.default_rng(0)
+    sig = rng.random((300, len(SIGNALS)))
+    model, _ = fit_confidence(sig, (sig.sum(1) < 2).astype(float), names=list(SIGNALS), seed=0)
+    bundle.manifest["confidence"] = {"tau": 0.9, "signals": list(SIGNALS), "model": model.to_dict()}
+    engine = Engine(bundle)
+    ans = engine.between(P(30, 30), P(120, 50), frames=3)
+    assert all(set(f.signals) == set(SIGNALS) and 0 <= f.confidence <= 1 for f in ans.frames)
+    bundle.manifest["confidence"]["signals"] = ["cycle", "wobble"]
+    with pytest.raises(ValueError, match="wobble"):
+        Engine(bundle)

@@ -2,7 +2,9 @@
 import numpy as np
 import pytest
 
-from models.route import at_t, interior_t, polyline_length, relax, resample, straight
+from scipy.spatial import cKDTree
+
+from models.route import at_t, interior_t, polyline_length, relax, resample, straight, taut
 
 # An L: 2 along x, then 1 along y; total length 3.
 L_SHAPE = np.array([[0.0, 0.0], [2.0, 0.0], [2.0, 1.0]])
@@ -124,3 +126,49 @@ def test_relax_can_project_the_ends_too():
 def test_bad_arguments_name_the_parameter(call, name):
     with pytest.raises(ValueError, match=name):
         call()
+
+
+def _clearance(samples):
+    tree = cKDTree(samples)
+    return lambda pts: tree.query(pts, k=1)[0]
+
+
+def _segment_clearance(points, clearance, step=0.01):
+    worst = 0.0
+    for a, b in zip(points[:-1], points[1:]):
+        s = np.linspace(0.0, 1.0, 200)[:, None]
+        worst = max(worst, float(np.max(clearance(a + s * (b - a)))))
+    return worst
+
+
+def test_taut_takes_the_chord_over_a_filled_square():
+    # A unit grid filling [0, 4] x [0, 4]: every point of the square is within sqrt(2)/2 of a grid
+    # point (the covering radius of the square lattice, elementary geometry), so with a tube of
+    # 0.75 the staircase from corner to corner collapses to the diagonal.
+    grid = np.stack(np.meshgrid(np.arange(5.0), np.arange(5.0)), -1).reshape(-1, 2)
+    stairs = np.array([[0, 0], [1, 0], [1, 1], [2, 1], [2, 2], [3, 2], [3, 3], [4, 3], [4, 4]], dtype=float)
+    keep = taut(stairs, _clearance(grid), 0.75, step=0.05)
+    assert keep.tolist() == [0, len(stairs) - 1]
+    assert polyline_length(stairs[keep]) == pytest.approx(4 * np.sqrt(2))
+
+
+def test_taut_keeps_the_bend_around_a_hole():
+    # Samples on a ring of radius 3 (a hole in the middle): the chord between opposite points
+    # passes the centre, 3 away from every sample, so the route must keep points of the arc.
+    ang = np.linspace(0.0, 2 * np.pi, 120, endpoint=False)
+    ring = 3.0 * np.stack([np.cos(ang), np.sin(ang)], 1)
+    half = ring[:61]  # from angle 0 to pi along the ring
+    clearance = _clearance(ring)
+    keep = taut(half, clearance, 0.5, step=0.05)
+    assert keep[0] == 0 and keep[-1] == 60 and len(keep) > 3
+    kept = half[keep]
+    assert _segment_clearance(kept, clearance) <= 0.5 + 1e-9  # every segment stays inside the tube
+    # Shorter than the ring's half (3 pi) but no shorter than the chords of the kept arc allow.
+    assert polyline_length(kept) < 3 * np.pi
+    assert polyline_length(kept) > 6.0 + 1.0
+
+
+def test_taut_rejects_bad_limits():
+    with pytest.raises(ValueError, match="limit, step"):
+        taut(L_SHAPE, lambda p: np.zeros(len(p)), 0.0, step=0.1)
+    assert taut(L_SHAPE[:1], lambda p: np.zeros(len(p)), 1.0, step=0.1).tolist() == [0]

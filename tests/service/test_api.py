@@ -17,7 +17,7 @@ from prometheus_client.parser import text_string_to_metric_families
 from pydantic import ValidationError
 
 from models.confidence import fit_confidence
-from models.engine import SIGNALS, Endpoint, Engine
+from models.engine import FITTED_SIGNALS as SIGNALS, Endpoint, Engine
 from models.render import render_many
 from service.api import create_app
 from service.registry import Registry
