@@ -408,29 +408,35 @@ class _KdView:
 
 
 def _corridor_search(view: _KdView, nodes, starts, exits):
-    """scipy Dijkstra over the edges leaving `nodes` (kd numbers) from a virtual start, row N.
+    """scipy Dijkstra on the subgraph of `nodes` (sorted kd numbers) from a virtual start.
 
-    Rows of other nodes are left empty: those nodes can be reached but lead nowhere, which spares
-    renumbering the corridor."""
-    a, n = view.adjacency, view.adjacency.shape[0]
+    The subgraph is renumbered compactly (corridor position; the virtual start is the last row),
+    so the search costs the corridor's size, not the bank's. Edges leaving the corridor are
+    dropped: a path through a node outside it is longer than the bound anyway."""
+    a, m = view.adjacency, len(nodes)
     lo, counts = a.indptr[nodes], view.degree[nodes]
     ends = np.cumsum(counts)
     pos = np.arange(ends[-1]) - np.repeat(ends - counts - lo, counts)  # CSR slots of those rows
-    row_counts = np.zeros(n + 1, dtype=np.int32)
-    row_counts[nodes], row_counts[n] = counts, len(starts)
-    indptr = np.r_[0, np.cumsum(row_counts, dtype=np.int32)].astype(np.int32)  # int32: no copy in csgraph
-    indices = np.r_[a.indices[pos], np.array(list(starts), dtype=np.int32)]
-    data = np.r_[a.data[pos], np.maximum(list(starts.values()), _TINY)]
-    sub = sparse.csr_matrix((data, indices, indptr), shape=(n + 1, n + 1), copy=False)
-    dist, pred = csgraph.dijkstra(sub, indices=n, return_predecessors=True)
-    exit_nodes = np.array(list(exits), dtype=np.int64)
-    totals = dist[exit_nodes] + np.array(list(exits.values()))
+    local_of = np.full(len(view.order), -1, dtype=np.int32)  # kd number -> corridor position
+    local_of[nodes] = np.arange(m, dtype=np.int32)
+    local = local_of[a.indices[pos]]
+    inside = local >= 0
+    kept = np.add.reduceat(inside, ends - counts) if len(pos) else np.zeros(m, dtype=np.int64)
+    kept = np.where(counts > 0, kept, 0)  # reduceat reads the next row's first slot for empty rows
+    indptr = np.r_[0, np.cumsum(kept), np.sum(kept) + len(starts)].astype(np.int32)
+    start_local = local_of[np.array(list(starts), dtype=np.int64)]
+    indices = np.r_[local[inside], start_local].astype(np.int32)
+    data = np.r_[a.data[pos][inside], np.maximum(list(starts.values()), _TINY)]
+    sub = sparse.csr_matrix((data, indices, indptr), shape=(m + 1, m + 1), copy=False)
+    dist, pred = csgraph.dijkstra(sub, indices=m, return_predecessors=True)
+    exit_local = local_of[np.array(list(exits), dtype=np.int64)]
+    totals = dist[exit_local] + np.array(list(exits.values()))
     best = int(np.argmin(totals))
     if not np.isfinite(totals[best]):
         return None, math.inf
-    path, node = [], int(exit_nodes[best])
-    while node != n:
-        path.append(node)
+    path, node = [], int(exit_local[best])
+    while node != m:
+        path.append(int(nodes[node]))
         node = int(pred[node])
     return path[::-1], float(totals[best])
 

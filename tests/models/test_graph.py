@@ -241,6 +241,22 @@ def test_shortest_paths_on_the_roll_equal_scipy_dijkstra(roll):
                 assert length == pytest.approx(row[t], rel=1e-12)
 
 
+def test_corridor_search_equals_scipy_dijkstra_on_a_curved_sheet_in_8d():
+    # A smooth 2-D sheet in 8-D (the shape of the large-bank benchmark): the corridor search,
+    # which renumbers only the nodes it needs, must give scipy's exact lengths (reference).
+    rng = np.random.default_rng(7)
+    u, v = rng.uniform(0.0, 1.0, size=(2, 4000))
+    feats = np.stack([u, v, np.sin(2 * u), np.cos(2 * v), u * u, v * v, u * v, np.sin(u + v)], axis=1)
+    graph = build_graph(feats * 10.0)
+    sources = rng.integers(0, len(graph), size=5)
+    ref = csgraph.dijkstra(graph.adjacency, indices=sources)
+    for row, s in zip(ref, sources):
+        for t in rng.integers(0, len(graph), size=10):
+            path, length = shortest_path(graph, int(s), int(t))
+            assert length == pytest.approx(row[t], rel=1e-12)
+            assert graph.adjacency[path[:-1], path[1:]].sum() == pytest.approx(length, rel=1e-12)
+
+
 def test_metric_weights_are_mahalanobis_distances():
     rng = np.random.default_rng(2)
     codes = rng.normal(size=(150, 3)) * [1.0, 3.0, 0.5]
