@@ -37,10 +37,14 @@ class BundleError(ValueError):
 
 @dataclass
 class Bundle:
+    """A loaded bundle. Image arrays of a bundle read from disk stay on disk until asked for
+    (`images()` reads them each time and keeps nothing), so a served model with a large bank
+    holds its codes, not its pixels."""
     manifest: dict
     model: Autoencoder
     space: ParamSpace
     arrays: dict[str, np.ndarray]
+    path: Path | None = None  # the folder it was loaded from, where image arrays not in `arrays` live
 
     @property
     def codes(self) -> np.ndarray:
@@ -64,7 +68,18 @@ class Bundle:
 
     def images(self, which: str = "images") -> np.ndarray:
         """Bank (or held-out) images as float32 (N, H, W, C) in [0, 1]."""
-        return self.arrays[which].astype(np.float32) / 255.0
+        return self.pixels(which).astype(np.float32) / 255.0
+
+    def pixels(self, which: str = "images") -> np.ndarray:
+        """Bank (or held-out) images as stored: uint8 (N, H, W, C); read from disk if not in memory."""
+        if which not in BANK_ARRAYS or "images" not in which:
+            raise KeyError(f"{which}: not an image array of a bundle")
+        if which in self.arrays:
+            return self.arrays[which]
+        if self.path is None:
+            raise KeyError(f"{which}: not in this in-memory bundle")
+        with np.load(self.path / BANK, allow_pickle=False) as z:
+            return z[which]
 
 
 def _to_uint8(images: np.ndarray) -> np.ndarray:
@@ -134,5 +149,8 @@ def load_bundle(path: str | Path) -> Bundle:
     model.load_state_dict(torch.load(path / WEIGHTS, weights_only=True, map_location="cpu"))
     model.eval()
     with np.load(path / BANK, allow_pickle=False) as z:
-        arrays = {k: z[k] for k in z.files}
-    return Bundle(manifest, model, ParamSpace.from_list(manifest["space"]), arrays)
+        missing = [k for k in BANK_ARRAYS if k not in z.files]
+        if missing:
+            raise BundleError(f"{path / BANK}: arrays missing: {missing}")
+        arrays = {k: z[k] for k in z.files if "images" not in k}  # pixels stay on disk until asked for
+    return Bundle(manifest, model, ParamSpace.from_list(manifest["space"]), arrays, path=path)

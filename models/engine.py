@@ -100,9 +100,10 @@ class Engine:
         # held-out share at training time (1.0 for bundles without one); None = keep the path
         self.tube = (bundle.manifest.get("route") or {}).get("tube", DEFAULT_TUBE) if tube == "bundle" else tube
         self.chart_neighbours = chart_neighbours
-        bank_images = bundle.images()
+        pixels = bundle.pixels()  # read for the pruning test only, not kept
         self.graph = lgraph.build_graph(bundle.codes, k=graph_k, params=bundle.params, space=self.space,
-                                        param_scale=self.scale, images=bank_images.reshape(len(bank_images), -1))
+                                        param_scale=self.scale, images=pixels.reshape(len(pixels), -1))
+        del pixels
         u, box = normalised_coords(bundle.params, self.space, self.scale)
         self._box = box
         self._settings_tree = cKDTree(u, boxsize=box)

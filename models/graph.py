@@ -178,19 +178,21 @@ def _truths(n, params, space, param_scale, images, max_param_ratio, max_image_ra
             raise ValueError(f"param_scale: {scale!r} not allowed; expected {p.shape[1]} positive values")
         out.append((lambda u, v: space.distance(p[u], p[v], scale), float(max_param_ratio)))
     if images is not None:
-        img = np.asarray(images, dtype=np.float64).reshape(len(images), -1)
-        if len(img) != n or not np.all(np.isfinite(img)):
-            raise ValueError(f"images: {len(img)} images not allowed; expected {n} finite images")
+        img = np.asarray(images)  # kept as given (uint8 too): a large bank is not copied to floats
+        img = img.reshape(len(img), -1)
+        if img.dtype.kind not in "uif" or len(img) != n or (
+                img.dtype.kind == "f" and not np.isfinite(np.sum(img, axis=1, dtype=np.float64)).all()):
+            raise ValueError(f"images: {len(img)} images of {img.dtype} not allowed; expected {n} finite images")
         out.append((lambda u, v: _rms(img, u, v), float(max_image_ratio)))
     return out
 
 
 def _rms(img: np.ndarray, u: np.ndarray, v: np.ndarray, *, chunk=4096) -> np.ndarray:
-    """RMS pixel difference per edge, in pixel units; chunked to bound memory."""
+    """RMS pixel difference per edge, in the images' units; chunked to bound memory."""
     out = np.empty(len(u))
     for s in range(0, len(u), chunk):
-        diff = img[u[s:s + chunk]] - img[v[s:s + chunk]]
-        out[s:s + chunk] = np.sqrt(np.mean(diff * diff, axis=1))
+        diff = img[u[s:s + chunk]].astype(np.float32) - img[v[s:s + chunk]]
+        out[s:s + chunk] = np.sqrt(np.mean(diff * diff, axis=1, dtype=np.float64))
     return out
 
 

@@ -67,6 +67,11 @@ def test_bundle_round_trip(tiny_scene, tmp_path):
     # identical codes from the reloaded model, and the bank holds exactly the training samples
     codes = encode(bundle.model, bundle.images())
     assert np.allclose(codes, bundle.codes, atol=1e-4)
+    # pixels stay on disk until asked for: a served bank holds codes, not images
+    assert "images" not in bundle.arrays and bundle.pixels().dtype == np.uint8
+    assert bundle.pixels("holdout_images").shape[0] == len(bundle.arrays["holdout_codes"])
+    with pytest.raises(KeyError, match="codes"):
+        bundle.pixels("codes")
     n_bank, n_hold = len(bundle.codes), len(bundle.arrays["holdout_codes"])
     assert n_bank + n_hold == len(tiny_scene)
     assert manifest["metrics"]["holdout_psnr"] > 0
