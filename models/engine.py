@@ -83,6 +83,7 @@ class Answer(FrameCounts):
     end_params: dict[str, float]
     codes: np.ndarray          # (frames, d) codes of the frames
     path_nodes: np.ndarray     # bank indices the geodesic passed through (empty for straight)
+    ends: np.ndarray | None = None  # (2, d) codes of the start and the end
 
 
 class Engine:
@@ -262,7 +263,7 @@ class Engine:
         intended = self.space.lerp(ps, pe, t)
         return Answer(route=route, frames=self._frames(codes, t, intended, min_confidence),
                       start_params=self.space.named(ps), end_params=self.space.named(pe),
-                      codes=codes, path_nodes=nodes)
+                      codes=codes, path_nodes=nodes, ends=np.stack([zs, ze]))
 
     def fill(self, targets: Sequence[Mapping[str, float]], min_confidence: float = 0.5) -> list[Frame]:
         """One frame per settings target (a missing view)."""

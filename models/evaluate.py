@@ -51,9 +51,11 @@ def _summary(psnr: np.ndarray, ssim: np.ndarray) -> dict:
 
 
 def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0.5,
-             sheet: str | Path | None = None, sheet_pairs: int = 6) -> dict:
+             sheet: str | Path | None = None, sheet_pairs: int = 6, latent_map: str | Path | None = None) -> dict:
     """Report dict: per method PSNR (dB), SSIM, p10 PSNR; pacing error (spacing units) and
-    confidence ECE / AUROC / accept-reject confusion for the latent routes."""
+    confidence ECE / AUROC / accept-reject confusion for the latent routes. `sheet` and
+    `latent_map` are PNG paths: the contact sheet and the bank's map with the geodesic routes of
+    the same first `sheet_pairs` pairs."""
     pairs = load_truth(truth_dir, engine.resolution, engine.channels)
     if not pairs:
         raise ValueError(f"{truth_dir}: the truth set has no pairs")
@@ -61,7 +63,7 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
     got = {m: {"psnr": [], "ssim": []} for m in METHODS}
     pacing = {"straight": [], "geodesic": []}
     conf = {"straight": ([], []), "geodesic": ([], [])}
-    rows = []
+    rows, mapped = [], []
     for pair in pairs:
         truth, t = pair["truth"], pair["t"]
         outs = {"dissolve": (1 - t)[:, None, None, None] * pair["start_image"] + t[:, None, None, None] * pair["end_image"],
@@ -75,6 +77,8 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
             pacing[route] += list(engine.space.distance(shown, want, engine.scale))
             if engine.confidence is not None:
                 conf[route][0].extend(f.confidence for f in ans.frames)
+            if route == "geodesic" and len(mapped) < sheet_pairs:
+                mapped.append(ans)
         for m in METHODS:
             got[m]["psnr"].append(psnr_batch(outs[m], truth))
             got[m]["ssim"].append(ssim_batch(outs[m], truth))
@@ -96,6 +100,11 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
     if sheet is not None:
         contact_sheet(rows, sheet)
         report["contact_sheet"] = str(sheet)
+    if latent_map is not None:
+        from .latent_map import engine_map_png
+
+        engine_map_png(engine, mapped, latent_map, title=f"bank codes and the geodesic routes of {len(mapped)} pairs")
+        report["latent_map"] = str(latent_map)
     return report
 
 

@@ -220,7 +220,7 @@ async def _on_domain(request: Request, exc: Exception) -> JSONResponse:
 # -- the app ------------------------------------------------------------------------------------
 def create_app(settings: Settings | None = None) -> FastAPI:
     """The geotween HTTP app; `settings` default to the GEOTWEEN_* environment."""
-    from .routes import jobs, models, ops, trainings
+    from .routes import jobs, maps, models, ops, trainings, viewer
 
     settings = settings or Settings()
 
@@ -255,6 +255,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_exception_handler(StarletteHTTPException, _on_http)
     for kind in (ServiceError, RegistryError, ValueError, LookupError):
         app.add_exception_handler(kind, _on_domain)
-    for module in (ops, models, jobs, trainings):
+    for module in (ops, models, maps, jobs, trainings, viewer):
         app.include_router(module.router)
     return app

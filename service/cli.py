@@ -10,6 +10,7 @@ import tempfile
 from pathlib import Path
 
 EXIT_OK, EXIT_BAD_INPUT, EXIT_REJECTED = 0, 2, 3
+LATENT_MAP = "latent_map.png"  # bank codes (PCA) with the route(s) drawn, beside the frames or report
 
 
 class UsageError(ValueError):
@@ -152,10 +153,15 @@ def cmd_between(args) -> int:
             save_png(f.image, out / name)
         frames.append({"index": f.index, "t": round(f.t, 6), "confidence": f.confidence, "accepted": f.accepted,
                        "params": f.params, "image": name})
+    from models.latent_map import engine_map_png
+
+    engine_map_png(engine, [answer], out / LATENT_MAP,
+                   title=f"{entry.name}@{entry.version}: bank codes and the {answer.route} route")
     manifest = {"model": entry.name, "version": entry.version, "route": answer.route, "synthesized": True,
                 "notice": "frames are synthesized by a learned model, not captured",
                 "start_params": answer.start_params, "end_params": answer.end_params,
-                "accepted": answer.accepted, "rejected": answer.rejected, "frames": frames}
+                "accepted": answer.accepted, "rejected": answer.rejected, "frames": frames,
+                "latent_map": LATENT_MAP}
     (out / "manifest.json").write_text(json.dumps(manifest, indent=1))
     print(f"{entry.name}@{entry.version} {answer.route}: {answer.accepted} accepted, {answer.rejected} rejected "
           f"-> {out}")
@@ -168,11 +174,12 @@ def cmd_eval(args) -> int:
     engine, entry = _local_engine(args)
     out = Path(args.out or f"eval-{entry.name}-{entry.version}")
     out.mkdir(parents=True, exist_ok=True)
-    report = evaluate(engine, args.truth, min_confidence=args.min_confidence, sheet=out / "contact_sheet.png")
+    report = evaluate(engine, args.truth, min_confidence=args.min_confidence, sheet=out / "contact_sheet.png",
+                      latent_map=out / LATENT_MAP)
     report.update({"model": entry.name, "version": entry.version})
     (out / "report.json").write_text(json.dumps(report, indent=1))
     print(format_table(report))
-    print(f"report: {out / 'report.json'}  contact sheet: {out / 'contact_sheet.png'}")
+    print(f"report: {out / 'report.json'}  contact sheet: {out / 'contact_sheet.png'}  latent map: {out / LATENT_MAP}")
     return EXIT_OK
 
 
@@ -193,7 +200,7 @@ def cmd_demo(args) -> int:
     from models.evaluate import evaluate, format_table
 
     engine = Engine.load(entry.path)
-    report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png")
+    report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png", latent_map=out / LATENT_MAP)
     (out / "report.json").write_text(json.dumps(report, indent=1))
     print(format_table(report))
     example = out / "between"

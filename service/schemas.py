@@ -76,6 +76,8 @@ class FrameOut(_Out):
                                                  "null when the model has no calibration")
     accepted: bool
     params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
+    code: list[float] | None = Field(None, description="the frame's latent code (place it on the latent map "
+                                                       "with POST /v1/models/{name}/map)")
 
 
 class BetweenOut(_Out):
@@ -87,6 +89,8 @@ class BetweenOut(_Out):
     rejected: int
     start_params: dict[str, float]
     end_params: dict[str, float]
+    start_code: list[float] | None = Field(None, description="latent code of the start")
+    end_code: list[float] | None = Field(None, description="latent code of the end")
     synthesized: Literal[True] = True
     notice: str = NOTICE
 
@@ -120,6 +124,41 @@ class FillOut(_Out):
     rejected: int
     synthesized: Literal[True] = True
     notice: str = NOTICE
+
+
+# -- latent map ---------------------------------------------------------------------------------
+class MapRequest(_Request):
+    codes: list[list[float]] = Field(min_length=1, description="latent codes to place on the map, each of the "
+                                                                "model's latent_dim (at most max_map_codes)")
+    version: int | None = Field(None, ge=1, description="model version (default: the latest)")
+
+    model_config = ConfigDict(json_schema_extra={"examples": [{"codes": [[0.12, -0.4, 0.9], [0.3, -0.2, 0.7]]}]})
+
+
+class MapPointOut(_Out):
+    x: float = Field(description="along the map's first axis, code units")
+    y: float = Field(description="along the map's second axis, code units")
+
+
+class BankPointOut(MapPointOut):
+    index: int = Field(description="1-based row of the bank")
+    params: dict[str, float] = Field(description="the settings of the captured sample this code encodes")
+
+
+class LatentMapOut(_Out):
+    model: str
+    version: int
+    latent_dim: int
+    explained: list[float] = Field(description="share of the bank's code variance along each map axis, [0, 1]")
+    bank: list[BankPointOut] = Field(description="every bank code on the map, with its sample's settings")
+    method: Literal["pca"] = Field("pca", description="principal components of the bank codes, fitted on the "
+                                                      "bank alone")
+
+
+class MapPointsOut(_Out):
+    model: str
+    version: int
+    points: list[MapPointOut] = Field(description="the request's codes on the same map as GET .../map, in order")
 
 
 # -- jobs ---------------------------------------------------------------------------------------

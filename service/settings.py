@@ -33,6 +33,7 @@ class Settings(BaseSettings):
     max_frames: int = Field(64, description="most in-between frames per request")
     max_fill_sync: int = Field(32, description="most fill targets answered at once; more run as a job")
     max_fill_targets: int = Field(4096, description="most fill targets per request")
+    max_map_codes: int = Field(1026, description="most latent codes placed on the map per request")
     inference_workers: int = Field(2, description="threads of the one executor that runs torch work")
     job_queue: int = Field(16, description="most jobs queued or running at once")
     job_workers: int = Field(1, description="jobs run at the same time (each takes inference workers)")
@@ -68,6 +69,7 @@ class Settings(BaseSettings):
             "max_frames": (1, 1024),
             "max_fill_sync": (1, 4096),
             "max_fill_targets": (1, 1_000_000),
+            "max_map_codes": (1, 1_000_000),
             "inference_workers": (1, 64),
             "job_queue": (1, 10_000),
             "job_workers": (1, 64),

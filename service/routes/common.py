@@ -54,6 +54,7 @@ class FrameData:
     accepted: bool
     params: dict[str, float]
     target: dict[str, float] | None = None
+    code: list[float] | None = None   # between frames: the latent code the frame was decoded from
 
 
 @dataclass
@@ -66,16 +67,20 @@ class Answer(FrameCounts):
     route: str | None = None
     start_params: dict[str, float] = field(default_factory=dict)
     end_params: dict[str, float] = field(default_factory=dict)
+    start_code: list[float] | None = None
+    end_code: list[float] | None = None
 
 
-def frame_data(frames: Sequence, targets: Sequence[dict] | None = None, *, offset: int = 0) -> list[FrameData]:
+def frame_data(frames: Sequence, targets: Sequence[dict] | None = None, *, offset: int = 0,
+               codes: Sequence | None = None) -> list[FrameData]:
     """Engine frames to FrameData (PNG encoding is CPU work: call it on the pool)."""
     out = []
     for k, f in enumerate(frames):
         out.append(FrameData(index=offset + k + 1, t=float(f.t), png=encode_png(f.image),
                              confidence=None if f.confidence is None else float(f.confidence),
                              accepted=bool(f.accepted), params={n: float(v) for n, v in f.params.items()},
-                             target=None if targets is None else dict(targets[k])))
+                             target=None if targets is None else dict(targets[k]),
+                             code=None if codes is None else [float(c) for c in codes[k]]))
     return out
 
 
@@ -85,7 +90,10 @@ def _frame_json(f: FrameData, kind: str, image: dict) -> dict:
         base["t"] = f.t
     else:
         base["target"] = f.target
-    return {**base, **image, "confidence": f.confidence, "accepted": f.accepted, "params": f.params}
+    body = {**base, **image, "confidence": f.confidence, "accepted": f.accepted, "params": f.params}
+    if f.code is not None:
+        body["code"] = f.code
+    return body
 
 
 def to_json(answer: Answer, *, files: Sequence[str] | None = None) -> dict:
@@ -98,6 +106,8 @@ def to_json(answer: Answer, *, files: Sequence[str] | None = None) -> dict:
     body.update(frames=frames, accepted=answer.accepted, rejected=answer.rejected)
     if answer.kind == "between":
         body.update(start_params=answer.start_params, end_params=answer.end_params)
+        if answer.start_code is not None:
+            body.update(start_code=answer.start_code, end_code=answer.end_code)
     body.update(synthesized=True, notice=NOTICE)
     return body
 
@@ -148,3 +158,11 @@ def respond(request: Request, answer: Answer, *, status_code: int = 200) -> Resp
         return Response(to_zip(answer), status_code=status_code, media_type=ZIP,
                         headers={"Content-Disposition": f'attachment; filename="{filename}"'})
     return JSONResponse(to_json(answer), status_code=status_code)
+
+
+def end_codes(answer) -> dict:
+    """start_code / end_code of an engine answer, as JSON lists (empty when it has none)."""
+    ends = getattr(answer, "ends", None)
+    if ends is None:
+        return {}
+    return {"start_code": [float(c) for c in ends[0]], "end_code": [float(c) for c in ends[1]]}

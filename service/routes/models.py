@@ -17,7 +17,7 @@ from ..imaging import decode_base64, open_image, to_model_array
 from ..registry import ModelVersion
 from ..schemas import (BetweenOut, BetweenRequest, DeletedOut, EndRequest, FillOut, FillRequest, JobOut,
                        ModelListOut, ModelOut)
-from .common import Answer, errors, frame_data, media, respond
+from .common import Answer, end_codes, errors, frame_data, media, respond
 
 router = APIRouter(prefix="/v1", tags=["models"])
 
@@ -52,8 +52,9 @@ def _between(cache: ModelCache, entry: ModelVersion, start, end, frames: int, ro
     engine = cache.engine(entry)
     ans = engine.between(_endpoint(start, engine), _endpoint(end, engine), frames=frames, route=route,
                          min_confidence=min_confidence)
-    return Answer(kind="between", model=entry.name, version=entry.version, frames=frame_data(ans.frames),
-                  route=ans.route, start_params=ans.start_params, end_params=ans.end_params)
+    return Answer(kind="between", model=entry.name, version=entry.version,
+                  frames=frame_data(ans.frames, codes=ans.codes), route=ans.route, start_params=ans.start_params,
+                  end_params=ans.end_params, **end_codes(ans))
 
 
 def fill_chunk(cache: ModelCache, entry: ModelVersion, targets: Sequence[Mapping[str, float]],

@@ -416,7 +416,8 @@ def test_two_apps_keep_separate_metrics(registry):
 
 # -- contract: OpenAPI, settings ----------------------------------------------------------------
 OPERATIONS = {"healthz", "readyz", "metrics", "list_models", "get_model", "delete_model_version", "between",
-              "between_upload", "fill", "get_job", "get_job_result", "cancel_job", "start_training"}
+              "between_upload", "fill", "get_job", "get_job_result", "cancel_job", "start_training",
+              "latent_map", "place_on_map"}
 
 
 def test_openapi_ids_examples_errors_and_media_types(client):
