@@ -1,18 +1,18 @@
 """Latency and throughput through a real uvicorn process on loopback, against the bare compute limit.
 
-    python bench/latency.py BUNDLE_DIR [--seconds 10] [--port 8765]
+    python bench/latency.py BUNDLE_DIR [--seconds 5] [--requests 100] [--port 8765]
 
 BUNDLE_DIR is a trained bundle (bench/quality.py leaves one in its --out folder). The bundle is
 published into a temporary registry, `geotween serve` is started on 127.0.0.1, and:
-- one client sends 16-frame geodesic requests (settings ends): p50 and p99 latency;
-- 8 clients in parallel for --seconds: frames per second and errors;
+- one client sends geodesic requests of 1, 8, 16 and 64 frames (settings ends): p50 and p99;
+- 1, 4 and 8 clients in parallel, 16 frames each, for --seconds: frames per second and errors;
 - the bare limit, in this process: engine.between + PNG encoding of 16 frames, no HTTP.
+The service has no micro-batching: each request is decoded as one batch on the inference pool.
 Traffic goes only to 127.0.0.1; every loop is bounded in count and time.
 """
 from __future__ import annotations
 
 import argparse
-import io
 import json
 import os
 import shutil
@@ -21,6 +21,7 @@ import sys
 import tempfile
 import threading
 import time
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -28,94 +29,123 @@ import numpy as np
 from common import ROOT, set_threads
 
 
-def _ends(rng):
+def _ends(rng, frames: int = 16) -> dict:
     a = {"lamp_azimuth": float(rng.uniform(0, 360)), "lamp_elevation": float(rng.uniform(20, 70))}
     b = {"lamp_azimuth": float(rng.uniform(0, 360)), "lamp_elevation": float(rng.uniform(20, 70))}
-    return {"start": {"params": a}, "end": {"params": b}, "frames": 16}
+    return {"start": {"params": a}, "end": {"params": b}, "frames": frames}
 
 
 def bare_limit(bundle: Path, n: int = 40) -> float:
     """Frames per second of engine.between(16) + PNG encoding in this process."""
-    from PIL import Image
-
     from models.engine import Endpoint, Engine
+    from service.imaging import encode_png
 
     set_threads()
     engine = Engine.load(bundle)
     rng = np.random.default_rng(1)
+    for _ in range(3):
+        engine.between(Endpoint(params=_ends(rng)["start"]["params"]), Endpoint(params=_ends(rng)["end"]["params"]), frames=16)
     t0 = time.perf_counter()
     for _ in range(n):
         body = _ends(rng)
         ans = engine.between(Endpoint(params=body["start"]["params"]), Endpoint(params=body["end"]["params"]), frames=16)
         for f in ans.frames:
-            Image.fromarray(np.round(f.image[..., 0] * 255).astype(np.uint8)).save(io.BytesIO(), format="PNG")
+            encode_png(f.image)
     return n * 16 / (time.perf_counter() - t0)
 
 
-def main() -> None:
+@contextmanager
+def serving(bundles: dict[str, Path], port: int, env_extra: dict | None = None):
+    """A `geotween serve` process on 127.0.0.1:port over a temporary registry holding `bundles`;
+    yields (url, process)."""
     import httpx
 
     from service.registry import Registry
 
-    p = argparse.ArgumentParser()
-    p.add_argument("bundle")
-    p.add_argument("--seconds", type=float, default=10.0)
-    p.add_argument("--port", type=int, default=8765)
-    p.add_argument("--requests", type=int, default=200)
-    args = p.parse_args()
-    reg_root = Path(tempfile.mkdtemp(prefix="geotween-lat-"))
-    Registry.open(reg_root).publish("demo", lambda f: shutil.copytree(args.bundle, f, dirs_exist_ok=True))
-    env = {**os.environ, "GEOTWEEN_REGISTRY": str(reg_root), "PYTHONPATH": str(ROOT)}
-    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(args.port)],
+    reg_root = Path(tempfile.mkdtemp(prefix="geotween-bench-reg-"))
+    reg = Registry.open(reg_root)
+    for name, path in bundles.items():
+        reg.publish(name, lambda f, p=path: shutil.copytree(p, f, dirs_exist_ok=True))
+    env = {**os.environ, "GEOTWEEN_REGISTRY": str(reg_root), "PYTHONPATH": str(ROOT), **(env_extra or {})}
+    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)],
                             env=env, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    url = f"http://127.0.0.1:{args.port}"
+    url = f"http://127.0.0.1:{port}"
     try:
         deadline = time.time() + 120
-        while time.time() < deadline:
+        while True:
             try:
                 if httpx.get(f"{url}/readyz", timeout=2).status_code == 200:
                     break
             except httpx.HTTPError:
-                time.sleep(0.5)
-        rng = np.random.default_rng(0)
-        with httpx.Client(base_url=url, timeout=30) as c:
-            for _ in range(5):  # warm-up: model load, graph build
-                c.post("/v1/models/demo/between", json=_ends(rng)).raise_for_status()
-            lat = []
-            for _ in range(args.requests):
-                t = time.perf_counter()
-                c.post("/v1/models/demo/between", json=_ends(rng)).raise_for_status()
-                lat.append((time.perf_counter() - t) * 1e3)
-        frames, errors, stop = [0], [0], time.time() + args.seconds
-        lock = threading.Lock()
-
-        def client(seed: int) -> None:
-            r = np.random.default_rng(seed)
-            with httpx.Client(base_url=url, timeout=30) as c:
-                while time.time() < stop:
-                    resp = c.post("/v1/models/demo/between", json=_ends(r))
-                    with lock:
-                        if resp.status_code == 200:
-                            frames[0] += 16
-                        else:
-                            errors[0] += 1
-
-        t0 = time.perf_counter()
-        threads = [threading.Thread(target=client, args=(s,)) for s in range(8)]
-        for t in threads:
-            t.start()
-        for t in threads:
-            t.join()
-        fps8 = frames[0] / (time.perf_counter() - t0)
+                pass
+            if time.time() > deadline or proc.poll() is not None:
+                raise RuntimeError(f"geotween serve did not become ready on {url}")
+            time.sleep(0.3)
+        yield url, proc
     finally:
         proc.terminate()
         proc.wait(timeout=20)
         shutil.rmtree(reg_root, ignore_errors=True)
-    bare = bare_limit(Path(args.bundle))
-    print(json.dumps({"between16_p50_ms": round(float(np.median(lat)), 2),
-                      "between16_p99_ms": round(float(np.percentile(lat, 99)), 2),
-                      "clients8_frames_per_s": round(fps8, 1), "clients8_errors": errors[0],
-                      "bare_frames_per_s": round(bare, 1), "ratio_to_bare": round(fps8 / bare, 3)}, indent=1))
+
+
+def measure(bundle: Path, *, port: int = 8765, requests: int = 100, seconds: float = 5.0,
+            frame_counts=(1, 8, 16, 64), clients=(1, 4, 8)) -> dict:
+    import httpx
+
+    out: dict = {"latency": {}, "throughput": {}, "micro_batching": False}
+    with serving({"demo": bundle}, port) as (url, _):
+        rng = np.random.default_rng(0)
+        with httpx.Client(base_url=url, timeout=30) as c:
+            for _ in range(5):  # warm-up: model load, graph build
+                c.post("/v1/models/demo/between", json=_ends(rng)).raise_for_status()
+            for frames in frame_counts:
+                lat = []
+                for _ in range(requests):
+                    body = _ends(rng, frames)
+                    t = time.perf_counter()
+                    c.post("/v1/models/demo/between", json=body).raise_for_status()
+                    lat.append((time.perf_counter() - t) * 1e3)
+                out["latency"][str(frames)] = {"p50_ms": round(float(np.median(lat)), 2),
+                                               "p99_ms": round(float(np.percentile(lat, 99)), 2)}
+        for n_clients in clients:
+            frames, errors, stop = [0], [0], time.time() + seconds
+            lock = threading.Lock()
+
+            def client(seed: int) -> None:
+                r = np.random.default_rng(seed)
+                with httpx.Client(base_url=url, timeout=30) as c:
+                    while time.time() < stop:
+                        resp = c.post("/v1/models/demo/between", json=_ends(r))
+                        with lock:
+                            if resp.status_code == 200:
+                                frames[0] += 16
+                            else:
+                                errors[0] += 1
+
+            t0 = time.perf_counter()
+            threads = [threading.Thread(target=client, args=(100 + s,)) for s in range(n_clients)]
+            for t in threads:
+                t.start()
+            for t in threads:
+                t.join()
+            out["throughput"][str(n_clients)] = {"frames_per_s": round(frames[0] / (time.perf_counter() - t0), 1),
+                                                 "errors": errors[0]}
+    bare = bare_limit(Path(bundle))
+    out["bare_frames_per_s"] = round(bare, 1)
+    for v in out["throughput"].values():
+        v["ratio_to_bare"] = round(v["frames_per_s"] / bare, 3)
+    return out
+
+
+def main() -> None:
+    p = argparse.ArgumentParser()
+    p.add_argument("bundle")
+    p.add_argument("--seconds", type=float, default=5.0)
+    p.add_argument("--port", type=int, default=8765)
+    p.add_argument("--requests", type=int, default=100)
+    args = p.parse_args()
+    print(json.dumps(measure(Path(args.bundle), port=args.port, requests=args.requests, seconds=args.seconds),
+                     indent=1))
 
 
 if __name__ == "__main__":

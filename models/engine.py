@@ -200,16 +200,20 @@ class Engine:
             raise ValueError(f"route: {route!r} is not allowed; expected one of {list(ROUTES)}")
         if route == "straight":
             return np.vstack([z_start, z_end]), np.zeros(0, dtype=np.int64)
+        if self.tube is not None:
+            g = self.graph  # pulled in the graph's metric, where the tube is round
+            clearance = lambda w: g.tree.query(w, k=1)[0]  # noqa: E731
+            limit, step = self.tube * self.spacing, 0.25 * self.spacing
+            if lroute.segment_within(g.warp(z_start), g.warp(z_end), clearance, limit, step=step):
+                # the chord keeps within the tube, so pulling any path taut ends in it
+                return np.vstack([z_start, z_end]), np.zeros(0, dtype=np.int64)
         line, nodes = lgraph.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
         # midpoints give the relaxation room to round corners between bank nodes
         dense = lroute.at_t(line, np.linspace(0.0, 1.0, 2 * len(line) - 1))
         relaxed = lroute.relax(dense, self.project if self.project_rounds else None,
                                rounds=self.relax_rounds, step=self.relax_step)
         if self.tube is not None:  # last, so that every segment of the answer keeps within the tube
-            g = self.graph  # pulled in the graph's metric, where the tube is round
-            clearance = lambda w: g.tree.query(w, k=1)[0]  # noqa: E731
-            relaxed = relaxed[lroute.taut(g.warp(relaxed), clearance, self.tube * self.spacing,
-                                          step=0.25 * self.spacing)]
+            relaxed = relaxed[lroute.taut(g.warp(relaxed), clearance, limit, step=step)]
         return relaxed, nodes
 
     # -- confidence ---------------------------------------------------------------------------

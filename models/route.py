@@ -153,11 +153,20 @@ def taut(points, clearance: Callable[[np.ndarray], np.ndarray], limit: float, *,
     while i < last:
         j = i + 1
         for cand in range(last, i + 1, -1):
-            n = int(np.ceil(np.linalg.norm(p[cand] - p[i]) / step))
-            s = np.arange(1, n)[:, None] / n
-            if n < 2 or np.max(clearance(p[i] + s * (p[cand] - p[i]))) <= limit:
+            if segment_within(p[i], p[cand], clearance, limit, step=step):
                 j = cand
                 break
         keep.append(j)
         i = j
     return np.asarray(keep, dtype=np.int64)
+
+
+def segment_within(a, b, clearance: Callable[[np.ndarray], np.ndarray], limit: float, *, step: float) -> bool:
+    """True when the segment a -> b keeps within `limit` of the data at samples at most `step`
+    apart, ends excluded (see `taut`)."""
+    a, b = np.asarray(a, dtype=np.float64), np.asarray(b, dtype=np.float64)
+    n = int(np.ceil(np.linalg.norm(b - a) / step))
+    if n < 2:
+        return True
+    s = np.arange(1, n)[:, None] / n
+    return bool(np.max(clearance(a + s * (b - a))) <= limit)
