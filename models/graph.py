@@ -112,6 +112,7 @@ def build_graph(codes, *, k=None, params=None, space=None, param_scale=None, ima
 
     _, idx = graph.tree.query(warped, k=max(candidates) + 1)
     idx = _drop_self(idx)
+    truths = [(_EdgeMemo(n, truth_of), ratio) for truth_of, ratio in truths]  # each k reuses the last's
     chosen = fallback = None
     for kk in candidates:
         u, v, w = _knn_edges(warped, idx[:, :kk])
@@ -185,6 +186,28 @@ def _truths(n, params, space, param_scale, images, max_param_ratio, max_image_ra
             raise ValueError(f"images: {len(img)} images of {img.dtype} not allowed; expected {n} finite images")
         out.append((lambda u, v: _rms(img, u, v), float(max_image_ratio)))
     return out
+
+
+class _EdgeMemo:
+    """An edge truth function (u, v) -> values that computes each undirected edge once: the k rule
+    tries growing k, and every k's edges include the previous k's."""
+
+    def __init__(self, n: int, truth_of):
+        self.n, self.truth_of = np.int64(n), truth_of
+        self.keys, self.values = np.zeros(0, dtype=np.int64), np.zeros(0)
+
+    def __call__(self, u: np.ndarray, v: np.ndarray) -> np.ndarray:
+        keys = np.minimum(u, v).astype(np.int64) * self.n + np.maximum(u, v)
+        pos = np.minimum(np.searchsorted(self.keys, keys), max(len(self.keys) - 1, 0))
+        known = self.keys[pos] == keys if len(self.keys) else np.zeros(len(keys), dtype=bool)
+        out = np.empty(len(keys))
+        out[known] = self.values[pos[known]]
+        new = ~known
+        out[new] = self.truth_of(u[new], v[new])
+        keys_all, values_all = np.r_[self.keys, keys[new]], np.r_[self.values, out[new]]
+        order = np.argsort(keys_all, kind="stable")
+        self.keys, self.values = keys_all[order], values_all[order]
+        return out
 
 
 def _rms(img: np.ndarray, u: np.ndarray, v: np.ndarray, *, chunk=4096) -> np.ndarray:
