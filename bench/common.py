@@ -10,13 +10,15 @@ sys.path.insert(0, str(ROOT))
 CACHE = Path(os.environ.get("GEOTWEEN_BENCH_CACHE", ROOT / "bench" / ".cache"))
 
 
-def demo_folders(size: int = 64) -> tuple[Path, Path]:
-    """(scene folder, truth folder) of the demo at `size` px, rendered on first use."""
+def demo_folders(size: int = 64, pairs: int = 90) -> tuple[Path, Path]:
+    """(scene folder, truth folder) of the demo at `size` px with `pairs` truth pairs, rendered
+    on first use into GEOTWEEN_BENCH_CACHE (default bench/.cache)."""
     from models.render import write_demo
 
-    out = CACHE / f"demo-{size}"
+    cache = Path(os.environ.get("GEOTWEEN_BENCH_CACHE", CACHE))
+    out = cache / (f"demo-{size}" if pairs == 90 else f"demo-{size}-{pairs}")
     if not (out / "truth" / "truth.json").is_file():
-        write_demo(out, size=size)
+        write_demo(out, size=size, pairs=pairs)
     return out / "scene", out / "truth"
 
 

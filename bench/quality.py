@@ -1,10 +1,10 @@
 """In-between quality on the demo truth set, against baselines, with confidence calibration.
 
-    python bench/quality.py [--resolution 64] [--steps N] [--out DIR]
+    python bench/quality.py [--resolution 64] [--steps N] [--budget-seconds S] [--out DIR]
 
-Trains the demo model at default settings (with calibration), then runs the eval report:
-cross-dissolve, straight route, geodesic route, the model's ceiling; PSNR, SSIM, p10, pacing,
-confidence ECE / AUROC / confusion; and route and 16-frame answer times.
+Trains the demo model (default settings unless told), with calibration, then runs the eval
+report: cross-dissolve, straight route, geodesic route, the model's ceiling; PSNR, SSIM, p10,
+pacing, confidence ECE / AUROC / confusion; and route and 16-frame answer times.
 """
 from __future__ import annotations
 
@@ -19,29 +19,25 @@ import numpy as np
 from common import demo_folders, set_threads
 
 
-def main() -> None:
-    p = argparse.ArgumentParser()
-    p.add_argument("--resolution", type=int, default=64)
-    p.add_argument("--steps", type=int, default=None)
-    p.add_argument("--out", default=None)
-    args = p.parse_args()
-    set_threads()
+def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: float | None = None,
+            out: Path | None = None, pairs: int = 90) -> dict:
     from models.engine import Endpoint, Engine
-    from models.evaluate import evaluate, format_table
+    from models.evaluate import evaluate
     from models.pipeline import train_bundle
     from models.scene import load_scene
     from models.train import TrainConfig
 
-    scene_dir, truth_dir = demo_folders(args.resolution)
-    scene = load_scene(scene_dir, resolution=args.resolution)
-    out = Path(args.out or tempfile.mkdtemp(prefix="geotween-bench-"))
-    cfg = TrainConfig() if args.steps is None else TrainConfig(steps=args.steps)
+    scene_dir, truth_dir = demo_folders(resolution, pairs=pairs)
+    scene = load_scene(scene_dir, resolution=resolution)
+    out = Path(out or tempfile.mkdtemp(prefix="geotween-bench-"))
+    cfg = TrainConfig(budget_seconds=budget_seconds)
+    if steps is not None:
+        cfg.steps = steps
     t0 = time.perf_counter()
     manifest = train_bundle(scene, out / "bundle", name="relief-tile", train_config=cfg, progress=None)
     train_wall = time.perf_counter() - t0
     engine = Engine.load(out / "bundle")
     report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png")
-    print(format_table(report))
     # timings on the demo bank
     rng = np.random.default_rng(0)
     ends = engine.bundle.codes[rng.integers(0, len(engine.bundle.codes), size=(50, 2))]
@@ -51,18 +47,37 @@ def main() -> None:
     route_ms = (time.perf_counter() - t) / len(ends) * 1e3
     imgs = engine.bundle.images()
     times = []
-    for i in range(30):
+    for i in range(min(30, len(imgs) // 2)):
         t = time.perf_counter()
         engine.between(Endpoint(image=imgs[i]), Endpoint(image=imgs[-1 - i]), frames=16)
         times.append((time.perf_counter() - t) * 1e3)
     conf = manifest["metrics"].get("confidence", {})
-    summary = {"train_seconds_incl_calibration": round(train_wall, 1), "fit": {k: v for k, v in manifest["metrics"].items() if k != "confidence"},
+    summary = {"resolution": resolution, "train_seconds_incl_calibration": round(train_wall, 1),
+               "fit": {k: v for k, v in manifest["metrics"].items() if k != "confidence"},
                "calibration": {k: conf.get(k) for k in ("status", "rows", "ece", "auroc", "method")},
+               "route": manifest.get("route"),
                "graph": {"k": engine.graph.k, "pruned": engine.graph.pruned, "components": engine.graph.components,
                          "bridges": engine.graph.bridges},
                "route_ms_mean": round(route_ms, 3), "answer16_ms_p50": round(float(np.median(times)), 2),
-               "answer16_ms_p99": round(float(np.percentile(times, 99)), 2), "report": report, "out": str(out)}
+               "answer16_ms_p99": round(float(np.percentile(times, 99)), 2), "report": report,
+               "bundle": str(out / "bundle")}
     (out / "quality.json").write_text(json.dumps(summary, indent=1))
+    return summary
+
+
+def main() -> None:
+    from models.evaluate import format_table
+
+    p = argparse.ArgumentParser()
+    p.add_argument("--resolution", type=int, default=64)
+    p.add_argument("--steps", type=int, default=None)
+    p.add_argument("--budget-seconds", type=float, default=None)
+    p.add_argument("--out", default=None)
+    args = p.parse_args()
+    set_threads()
+    summary = measure(args.resolution, steps=args.steps, budget_seconds=args.budget_seconds,
+                      out=Path(args.out) if args.out else None)
+    print(format_table(summary["report"]))
     print(json.dumps({k: v for k, v in summary.items() if k != "report"}, indent=1))
 
 

@@ -32,7 +32,9 @@ def _route_len(graph, line) -> float:
     return float(np.sum(np.linalg.norm(np.diff(graph.warp(line), axis=0), axis=1)))
 
 
-def measure_bank(codes: np.ndarray, *, routes: int, check: int, seed: int = 1, **build) -> dict:
+def measure_bank(codes: np.ndarray, *, routes: int, check: int, seed: int = 1, local: int | None = None,
+                 **build) -> dict:
+    """Build time and route times between random pairs (local=K: each code to its K-th nearest)."""
     from scipy.sparse import csgraph
 
     from models import graph as lgraph
@@ -42,6 +44,8 @@ def measure_bank(codes: np.ndarray, *, routes: int, check: int, seed: int = 1, *
     build_s = time.perf_counter() - t
     rng = np.random.default_rng(seed)
     pairs = rng.integers(0, len(codes), size=(routes + 5, 2))
+    if local is not None:
+        pairs[:, 1] = g.tree.query(g.warped[pairs[:, 0]], k=min(local, len(codes)))[1][:, -1]
     for a, b in pairs[:5]:  # warm-up: the kd view is built once per graph
         lgraph.path_with_ends(g, codes[a], codes[b], attach=1)
     times = []

@@ -140,8 +140,9 @@ def _projected(p: np.ndarray, project, moving: slice) -> np.ndarray:
 def taut(points, clearance: Callable[[np.ndarray], np.ndarray], limit: float, *, step: float) -> np.ndarray:
     """Indices of the vertices of an (M, d) polyline kept by pulling it taut inside a tube.
 
-    From each kept vertex the polyline jumps to the farthest later vertex whose straight segment
-    stays within `limit` everywhere, judged by `clearance` ((K, d) points -> (K,) distances to the
+    From each kept vertex the polyline jumps to the last vertex, if the straight segment there stays
+    within `limit` everywhere, else as far forward as its line of sight reaches (each further vertex
+    while the segment stays within), judged by `clearance` ((K, d) points -> (K,) distances to the
     data) at samples at most `step` apart; the next vertex is always reachable. On a flat stretch
     the route becomes the chord; where the chord would leave the tube (a gap, a bend of the
     manifold) the route keeps the vertices that hold it near the data. Ends are always kept.
@@ -151,11 +152,12 @@ def taut(points, clearance: Callable[[np.ndarray], np.ndarray], limit: float, *,
         raise ValueError(f"limit, step: {limit!r}, {step!r} not allowed; expected both > 0")
     keep, i, last = [0], 0, len(p) - 1
     while i < last:
-        j = i + 1
-        for cand in range(last, i + 1, -1):
-            if segment_within(p[i], p[cand], clearance, limit, step=step):
-                j = cand
-                break
+        if segment_within(p[i], p[last], clearance, limit, step=step):
+            j = last
+        else:  # line of sight forward: the next vertex is always reachable
+            j = i + 1
+            while j + 1 < last and segment_within(p[i], p[j + 1], clearance, limit, step=step):
+                j += 1
         keep.append(j)
         i = j
     return np.asarray(keep, dtype=np.int64)
