@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from models.params import Parameter, ParamSpace
+from models.params import ParamSpace
 from models.scene import SceneError, load_scene, load_spec, save_scene
 
 SPEC = {"name": "relief-tile",

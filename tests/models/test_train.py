@@ -3,7 +3,7 @@ import pytest
 import torch
 
 from models.bundle import BundleError, load_bundle, read_manifest
-from models.nets import Autoencoder, ModelConfig
+from models.nets import ModelConfig
 from models.pipeline import train_bundle
 from models.train import TrainConfig, default_model_config, encode, split_holdout, train
 

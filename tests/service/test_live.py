@@ -28,6 +28,21 @@ KEY = "live-key-0123456789abcdef"
 START_TIMEOUT = 90.0  # seconds: importing torch on a busy 2-core machine is slow
 
 
+def wait_until_alive(url: str, proc: subprocess.Popen, log: Path) -> None:
+    """Poll /healthz until the server answers; fail with its log if it exits or takes too long."""
+    deadline = time.monotonic() + START_TIMEOUT
+    while True:
+        try:
+            if httpx.get(url + "/healthz", timeout=2.0).status_code == 200:
+                return
+        except httpx.TransportError:
+            pass
+        if proc.poll() is not None or time.monotonic() > deadline:
+            proc.kill()
+            pytest.fail(f"the server did not start (exit {proc.poll()}):\n{log.read_text()[-3000:]}")
+        time.sleep(0.2)
+
+
 
 
 def dockerfile_cmd(path: Path = ROOT / "Dockerfile") -> list[str]:
@@ -70,17 +85,7 @@ def server(tmp_path_factory, service_bundle):
         proc = subprocess.Popen(local_argv(dockerfile_cmd(), port), cwd=ROOT, env=env, stdout=out,
                                 stderr=subprocess.STDOUT)
     url = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + START_TIMEOUT
-    while True:
-        try:
-            if httpx.get(url + "/healthz", timeout=2.0).status_code == 200:
-                break
-        except httpx.TransportError:
-            pass
-        if proc.poll() is not None or time.monotonic() > deadline:
-            proc.kill()
-            pytest.fail(f"the server did not start (exit {proc.poll()}):\n{log.read_text()[-3000:]}")
-        time.sleep(0.2)
+    wait_until_alive(url, proc, log)
     yield {"url": url, "proc": proc, "log": log, "root": root}
     proc.send_signal(signal.SIGINT)  # graceful: uvicorn finishes in-flight requests, then exits
     try:

@@ -8,7 +8,6 @@ import re
 import shutil
 import signal
 import subprocess
-import time
 import tomllib
 import zipfile
 from pathlib import Path
@@ -20,7 +19,7 @@ from fastapi.testclient import TestClient
 from service.api import create_app
 from service.registry import Registry
 from service.settings import Settings
-from test_live import START_TIMEOUT, dockerfile_cmd, free_port, local_argv
+from test_live import dockerfile_cmd, free_port, local_argv, wait_until_alive
 
 ROOT = Path(__file__).resolve().parents[2]
 STATIC = ROOT / "service" / "static"
@@ -114,17 +113,8 @@ def live(tmp_path_factory, service_bundle, small_bundle):
     with open(log, "wb") as out:
         proc = subprocess.Popen(argv, cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
     url = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + START_TIMEOUT
     try:
-        while True:
-            try:
-                if httpx.get(url + "/healthz", timeout=2.0).status_code == 200:
-                    break
-            except httpx.TransportError:
-                pass
-            if proc.poll() is not None or time.monotonic() > deadline:
-                pytest.fail(f"the server did not start (exit {proc.poll()}):\n{log.read_text()[-3000:]}")
-            time.sleep(0.2)
+        wait_until_alive(url, proc, log)
         yield {"url": url, "registry": reg, "log": log}
     finally:
         proc.send_signal(signal.SIGINT)
