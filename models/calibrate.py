@@ -52,11 +52,18 @@ def choose_tube(engine: Engine, holdout_params: np.ndarray, holdout_images: np.n
     s, m, t, a = bracketed(engine, holdout_params, seed=seed)
     if len(s) == 0:
         return engine.tube, {}
-    scores = {}
-    for tube in candidates:
-        engine.tube = float(tube)
-        scores[float(tube)] = float(np.mean(psnr_batch(engine.decode(route_codes(engine, s, t, a, "geodesic")),
-                                                       holdout_images[m])))
+    codes, relaxed, scores = engine.bundle.codes, {}, {}
+    for tube in map(float, candidates):
+        at = []
+        for j, (i, k, f) in enumerate(zip(s, t, a)):  # the graph path does not depend on the tube: once each
+            if engine.chord_inside(codes[i], codes[k], tube):
+                line = np.vstack([codes[i], codes[k]])
+            else:
+                if j not in relaxed:
+                    relaxed[j] = engine.relaxed_path(codes[i], codes[k])[0]
+                line = engine.pulled_taut(relaxed[j], tube)
+            at.append(lroute.at_t(line, [f])[0])
+        scores[tube] = float(np.mean(psnr_batch(engine.decode(np.array(at)), holdout_images[m])))
     best = max(scores, key=lambda c: (round(scores[c], 6), -c))
     engine.tube = best
     return best, {str(c): round(v, 3) for c, v in scores.items()}

@@ -18,6 +18,7 @@ synthesized, not captured.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Mapping, Sequence
 
@@ -124,6 +125,13 @@ class Engine:
     def load(cls, path: str | Path, **kw) -> "Engine":
         return cls(load_bundle(path), **kw)
 
+    @cached_property
+    def latent_map(self):
+        """The bank's 2-D PCA map (models.latent_map), fitted once per engine."""
+        from .latent_map import fit_map
+
+        return fit_map(self.bundle.codes)
+
     @property
     def resolution(self) -> int:
         return self.bundle.resolution
@@ -200,21 +208,40 @@ class Engine:
             raise ValueError(f"route: {route!r} is not allowed; expected one of {list(ROUTES)}")
         if route == "straight":
             return np.vstack([z_start, z_end]), np.zeros(0, dtype=np.int64)
-        if self.tube is not None:
-            g = self.graph  # pulled in the graph's metric, where the tube is round
-            clearance = lambda w: g.tree.query(w, k=1)[0]  # noqa: E731
-            limit, step = self.tube * self.spacing, 0.25 * self.spacing
-            if lroute.segment_within(g.warp(z_start), g.warp(z_end), clearance, limit, step=step):
-                # the chord keeps within the tube, so pulling any path taut ends in it
-                return np.vstack([z_start, z_end]), np.zeros(0, dtype=np.int64)
+        if self.chord_inside(z_start, z_end):
+            # the chord keeps within the tube, so pulling any path taut ends in it
+            return np.vstack([z_start, z_end]), np.zeros(0, dtype=np.int64)
+        relaxed, nodes = self.relaxed_path(z_start, z_end)
+        return self.pulled_taut(relaxed), nodes
+
+    def _tube(self, tube: float | None):
+        """(clearance function in the graph's metric, where the tube is round; limit; step)."""
+        g = self.graph
+        return (lambda w: g.tree.query(w, k=1)[0]), tube * self.spacing, 0.25 * self.spacing
+
+    def chord_inside(self, z_start: np.ndarray, z_end: np.ndarray, tube: float | None = None) -> bool:
+        """True when the straight chord keeps within the tube (radius `tube`, default self.tube)."""
+        tube = self.tube if tube is None else tube
+        if tube is None:
+            return False
+        clearance, limit, step = self._tube(tube)
+        return lroute.segment_within(self.graph.warp(z_start), self.graph.warp(z_end), clearance, limit, step=step)
+
+    def relaxed_path(self, z_start: np.ndarray, z_end: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The graph's shortest path between the ends, relaxed (curve shortening), and its nodes."""
         line, nodes = lgraph.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
         # midpoints give the relaxation room to round corners between bank nodes
         dense = lroute.at_t(line, np.linspace(0.0, 1.0, 2 * len(line) - 1))
-        relaxed = lroute.relax(dense, self.project if self.project_rounds else None,
-                               rounds=self.relax_rounds, step=self.relax_step)
-        if self.tube is not None:  # last, so that every segment of the answer keeps within the tube
-            relaxed = relaxed[lroute.taut(g.warp(relaxed), clearance, limit, step=step)]
-        return relaxed, nodes
+        return lroute.relax(dense, self.project if self.project_rounds else None,
+                            rounds=self.relax_rounds, step=self.relax_step), nodes
+
+    def pulled_taut(self, line: np.ndarray, tube: float | None = None) -> np.ndarray:
+        """`line` pulled taut in the tube (radius `tube`, default self.tube; None: unchanged)."""
+        tube = self.tube if tube is None else tube
+        if tube is None:
+            return line
+        clearance, limit, step = self._tube(tube)
+        return line[lroute.taut(self.graph.warp(line), clearance, limit, step=step)]
 
     # -- confidence ---------------------------------------------------------------------------
     def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray,
@@ -225,7 +252,8 @@ class Engine:
         spacings), and the RMS pixel change of a second round trip D(E(D(z)))."""
         names = self.signal_names
         with torch.inference_mode():
-            z2 = self.model.encoder(to_tensor(images)).double().numpy() if {"cycle", "image_cycle"} & set(names) else None
+            round_trip = {"cycle", "image_cycle"} & set(names)
+            z2 = self.model.encoder(to_tensor(images)).double().numpy() if round_trip else None
             img2 = (to_images(self.model.decoder(torch.as_tensor(z2, dtype=torch.float32)))
                     if "image_cycle" in names else None)
         make = {"cycle": lambda: np.linalg.norm(z2 - codes, axis=1) / self.spacing,

@@ -177,7 +177,7 @@ def engine_map_png(engine, answers: Sequence, out: str | Path, *, title: str = "
     """The map PNG of an engine's bank with the routes of between answers (their `codes`, `ends`
     and frames' `accepted`); bank dots coloured by the first parameter."""
     bundle, space = engine.bundle, engine.space
-    lmap = fit_map(bundle.codes)
+    lmap = engine.latent_map
     routes = [RouteMarks(frames=lmap.project(a.codes), ends=lmap.project(a.ends),
                          accepted=[f.accepted for f in a.frames]) for a in answers]
     first = space.parameters[0]

@@ -15,7 +15,6 @@ from typing import Annotated
 from fastapi import APIRouter, Query, Request
 from starlette.concurrency import run_in_threadpool
 
-from models.latent_map import fit_map
 
 from ..deps import ModelCache, ModelName, ServicesDep, note
 from ..errors import BadInput
@@ -29,7 +28,7 @@ router = APIRouter(prefix="/v1", tags=["models"])
 def _bank_map(cache: ModelCache, entry: ModelVersion) -> dict:
     engine = cache.engine(entry)
     codes, params = engine.bundle.codes, engine.bundle.params
-    lmap = fit_map(codes)
+    lmap = engine.latent_map
     xy = lmap.project(codes)
     bank = [{"index": i + 1, "x": float(x), "y": float(y), "params": engine.space.named(p)}
             for i, ((x, y), p) in enumerate(zip(xy, params))]
@@ -44,7 +43,7 @@ def _place(cache: ModelCache, entry: ModelVersion, codes: list[list[float]]) -> 
         if len(code) != d:
             raise BadInput(f"codes[{i}]: {len(code)} values; model {entry.name!r} has latent_dim={d}",
                            field=f"codes[{i}]", code="invalid_codes")
-    xy = fit_map(engine.bundle.codes).project(codes)
+    xy = engine.latent_map.project(codes)
     return [{"x": float(x), "y": float(y)} for x, y in xy]
 
 

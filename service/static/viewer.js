@@ -325,19 +325,24 @@
     return body;
   }
 
+  // The request body from the form, or null with the reason shown (bad input in a field).
+  function checkedRequest() {
+    problem("");
+    try {
+      return request();
+    } catch (err) {
+      problem(err.message);
+      return null;
+    }
+  }
+
   // -- frames ------------------------------------------------------------------------------
   async function makeFrames(event) {
     event.preventDefault();
     if (!state.model) return;
-    problem("");
     stopPlayback();
-    let body;
-    try {
-      body = request();
-    } catch (err) {
-      problem(err.message);
-      return;
-    }
+    const body = checkedRequest();
+    if (!body) return;
     $("go").disabled = true;
     say("Making " + body.frames + " frame" + (body.frames === 1 ? "" : "s") + "...");
     try {
@@ -580,14 +585,8 @@
 
   async function downloadZip() {
     if (!state.model) return;
-    problem("");
-    let body;
-    try {
-      body = request();
-    } catch (err) {
-      problem(err.message);
-      return;
-    }
+    const body = checkedRequest();
+    if (!body) return;
     say("Preparing the ZIP of " + body.frames + " frames...");
     try {
       const response = await postJSON(modelPath("/between"), body, "application/zip");
