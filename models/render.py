@@ -13,6 +13,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 from scipy import ndimage
@@ -129,34 +130,68 @@ def demo_grid() -> np.ndarray:
     return np.stack([az.ravel(), el.ravel()], axis=-1)
 
 
-def truth_pairs(count: int = 90, *, seed: int = 0, min_steps: int = 2, max_steps: int = 6) -> list[dict]:
-    """Pairs of grid settings `steps` grid steps apart along an axis or a diagonal (short arc)."""
+def grid_pairs(space: ParamSpace, axes: tuple[np.ndarray, np.ndarray], directions: dict[str, tuple[int, int]],
+               count: int, *, seed: int = 0, min_steps: int = 2, max_steps: int = 6,
+               max_draws: int = 1_000_000) -> list[dict]:
+    """Distinct pairs of settings on a 2-D grid, `steps` grid steps apart along a direction.
+
+    `axes` are the grid values of the two parameters of `space`; `directions` maps a name to a
+    step (d0, d1) in grid units, taken in turn. Half the time the first axis runs the other way,
+    so a diagonal's name does not fix its orientation. A periodic axis wraps (the pair lies on its
+    short arc); a non-periodic one must hold both ends. Each pair is {"direction", "steps",
+    "start", "end"} with start and end in the parameters' units.
+    """
+    if len(space) != 2 or len(axes) != 2:
+        raise ValueError(f"grid_pairs needs a 2-parameter space and two axes, got {len(space)} and {len(axes)}")
+    if not 1 <= min_steps <= max_steps:
+        raise ValueError(f"need 1 <= min_steps <= max_steps, got {min_steps} and {max_steps}")
+    n0, n1 = len(axes[0]), len(axes[1])
+    wrap0, wrap1 = bool(space.periodic[0]), bool(space.periodic[1])
+    for name, n, wraps in ((space.names[0], n0, wrap0), (space.names[1], n1, wrap1)):
+        if wraps and 2 * max_steps > n:  # beyond half a turn the short arc is the other way round
+            raise ValueError(f"{name}: max_steps={max_steps} is over half of its {n} periodic grid values")
     rng = np.random.default_rng(seed)
     pairs, seen = [], set()
-    n_el = len(GRID_ELEVATION)
-    names = list(TRUTH_DIRECTIONS)
+    names = list(directions)
+    draws = 0
     while len(pairs) < count:
+        draws += 1
+        if draws > max_draws:
+            raise ValueError(f"found only {len(pairs)} distinct pairs of {count} in {max_draws} draws; "
+                             "ask for fewer pairs or a wider step range")
         direction = names[len(pairs) % len(names)]
-        da, de = TRUTH_DIRECTIONS[direction]
+        d0, d1 = directions[direction]
         steps = int(rng.integers(min_steps, max_steps + 1))
-        if de != 0 and steps > n_el - 1:
+        if (d1 != 0 and not wrap1 and steps > n1 - 1) or (d0 != 0 and not wrap0 and steps > n0 - 1):
             continue
-        ia = int(rng.integers(0, len(GRID_AZIMUTH)))
-        ie = int(rng.integers(0, n_el))
-        je = ie + de * steps
-        if not 0 <= je < n_el:
+        i0 = int(rng.integers(0, n0))
+        i1 = int(rng.integers(0, n1))
+        j1 = i1 + d1 * steps
+        if wrap1:
+            j1 %= n1
+        elif not 0 <= j1 < n1:
             continue
-        if rng.random() < 0.5:  # walk either way round
-            da = -da
-        ja = (ia + da * steps) % len(GRID_AZIMUTH)
-        key = (ia, ie, ja, je)
+        if rng.random() < 0.5:  # walk either way along the first axis
+            d0 = -d0
+        j0 = i0 + d0 * steps
+        if wrap0:
+            j0 %= n0
+        elif not 0 <= j0 < n0:
+            continue
+        key = (i0, i1, j0, j1)
         if key in seen:
             continue
         seen.add(key)
-        start = np.array([GRID_AZIMUTH[ia], GRID_ELEVATION[ie]])
-        end = np.array([GRID_AZIMUTH[ja], GRID_ELEVATION[je]])
+        start = np.array([axes[0][i0], axes[1][i1]])
+        end = np.array([axes[0][j0], axes[1][j1]])
         pairs.append({"direction": direction, "steps": steps, "start": start, "end": end})
     return pairs
+
+
+def truth_pairs(count: int = 90, *, seed: int = 0, min_steps: int = 2, max_steps: int = 6) -> list[dict]:
+    """Pairs of demo grid settings `steps` grid steps apart along an axis or a diagonal (short arc)."""
+    return grid_pairs(DEMO_SPACE, (GRID_AZIMUTH, GRID_ELEVATION), TRUTH_DIRECTIONS, count, seed=seed,
+                      min_steps=min_steps, max_steps=max_steps)
 
 
 def write_demo(out: str | Path, *, size: int = 64, pairs: int = 90, seed: int = 0) -> tuple[Path, Path]:
@@ -171,12 +206,20 @@ def write_demo(out: str | Path, *, size: int = 64, pairs: int = 90, seed: int = 
 
 
 def write_truth(out: str | Path, pairs: list[dict], *, size: int = 64) -> Path:
-    """Truth set: truth.json plus PNGs.
+    """The demo's truth set (see `write_truth_set`), rendered at size x size pixels."""
+    return write_truth_set(out, pairs, lambda p: render(float(p[0]), float(p[1]), size), DEMO_SPACE)
 
+
+def write_truth_set(out: str | Path, pairs: list[dict], view: Callable[[np.ndarray], np.ndarray],
+                    space: ParamSpace) -> Path:
+    """Truth set: truth.json plus PNGs, each image made by `view(settings vector)`.
+
+    `view` returns (H, W) or (H, W, 1) floats in [0, 1] for grayscale, (H, W, 3) for colour.
     truth.json = {"format": "geotween-truth/1", "space": [parameter dicts], "pairs": [
       {"direction", "steps", "start": {"params": {...}, "image": "p000_start.png"},
        "end": {...}, "frames": [{"t": 1/6, "params": {...}, "image": "p000_t1.png"}, ...]}]}
-    Frame params are the true settings at t on the short arc; images are 8-bit grayscale PNGs.
+    Frame params are the true settings at t (on the short arc for periodic parameters); images
+    are 8-bit grayscale or RGB PNGs.
     """
     from PIL import Image
 
@@ -184,19 +227,24 @@ def write_truth(out: str | Path, pairs: list[dict], *, size: int = 64) -> Path:
     out.mkdir(parents=True, exist_ok=True)
 
     def save(name: str, p: np.ndarray) -> dict:
-        img = render(float(p[0]), float(p[1]), size)
-        Image.fromarray(np.round(img * 255).astype(np.uint8), mode="L").save(out / name)
-        return {"params": DEMO_SPACE.named(p), "image": name}
+        img = np.asarray(view(p))
+        if img.ndim == 3 and img.shape[2] == 1:
+            img = img[..., 0]
+        if not (img.ndim == 2 or (img.ndim == 3 and img.shape[2] == 3)):
+            raise ValueError(f"view must give (H, W), (H, W, 1) or (H, W, 3) images, got {img.shape}")
+        pixels = np.round(np.clip(img, 0.0, 1.0) * 255).astype(np.uint8)
+        Image.fromarray(pixels).save(out / name)  # uint8 (H, W) is L, (H, W, 3) is RGB
+        return {"params": space.named(p), "image": name}
 
     entries = []
     for i, pair in enumerate(pairs):
         frames = []
         for j, t in enumerate(TRUTH_T, start=1):
-            entry = save(f"p{i:03d}_t{j}.png", DEMO_SPACE.lerp(pair["start"], pair["end"], t))
+            entry = save(f"p{i:03d}_t{j}.png", space.lerp(pair["start"], pair["end"], t))
             frames.append({"t": float(t), **entry})
         entries.append({"direction": pair["direction"], "steps": pair["steps"],
                         "start": save(f"p{i:03d}_start.png", pair["start"]),
                         "end": save(f"p{i:03d}_end.png", pair["end"]), "frames": frames})
-    doc = {"format": "geotween-truth/1", "space": DEMO_SPACE.to_list(), "pairs": entries}
+    doc = {"format": "geotween-truth/1", "space": space.to_list(), "pairs": entries}
     (out / "truth.json").write_text(json.dumps(doc, indent=1))
     return out

@@ -2,7 +2,9 @@
 import numpy as np
 import pytest
 
-from models.render import DEMO_SPACE, Tile, demo_grid, render, shadow_mask, heightfield, truth_pairs
+from models.params import Parameter, ParamSpace
+from models.render import (DEMO_SPACE, Tile, demo_grid, grid_pairs, heightfield, render, shadow_mask,
+                           truth_pairs)
 
 
 @pytest.mark.parametrize("azimuth, elevation", [(0, 20), (75, 35), (200, 50), (310, 70)])
@@ -63,3 +65,40 @@ def test_demo_grid_and_truth_pairs():
         da, de = {"azimuth": (1, 0), "elevation": (0, 1), "rising": (1, 1), "falling": (1, -1)}[pair["direction"]]
         assert abs(d[0]) == pytest.approx(15.0 * steps * da)  # short arc on azimuth
         assert abs(d[1]) == pytest.approx(10.0 * steps * abs(de))
+
+
+def test_demo_truth_pairs_are_unchanged_for_seed_0():
+    # Spot values taken from the pre-refactor truth_pairs(90, seed=0), before the pair picker was
+    # shared with the photo scene: (index, direction, steps, start, end).
+    pinned = [(0, "azimuth", 6, (225.0, 50.0), (135.0, 50.0)),
+              (1, "elevation", 3, (15.0, 20.0), (15.0, 50.0)),
+              (2, "rising", 2, (300.0, 20.0), (270.0, 40.0)),
+              (3, "falling", 2, (0.0, 60.0), (30.0, 40.0)),
+              (17, "elevation", 3, (270.0, 20.0), (270.0, 50.0)),
+              (44, "azimuth", 4, (270.0, 50.0), (330.0, 50.0)),
+              (89, "elevation", 5, (285.0, 20.0), (285.0, 70.0))]
+    pairs = truth_pairs(90, seed=0)
+    assert len(pairs) == 90
+    for i, direction, steps, start, end in pinned:
+        assert (pairs[i]["direction"], pairs[i]["steps"]) == (direction, steps)
+        assert tuple(pairs[i]["start"]) == start and tuple(pairs[i]["end"]) == end
+
+
+def test_grid_pairs_keep_non_periodic_ends_on_the_grid_and_refuse_too_many():
+    space = ParamSpace([Parameter("u", 0.0, 1.0), Parameter("v", 0.0, 1.0)])
+    axes = (np.linspace(0, 1, 5), np.linspace(0, 1, 5))
+    pairs = grid_pairs(space, axes, {"u": (1, 0), "v": (0, 1)}, 20, seed=0, min_steps=2, max_steps=3)
+    keys = {(tuple(p["start"]), tuple(p["end"])) for p in pairs}
+    assert len(keys) == 20
+    for p in pairs:
+        assert np.all((0 <= p["start"]) & (p["start"] <= 1) & (0 <= p["end"]) & (p["end"] <= 1))
+        assert np.abs(p["end"] - p["start"]).max() == pytest.approx(0.25 * p["steps"])
+    # u walks either way: (3 + 2) * 2 per row x 5 rows = 50 pairs; v only upwards: 25. Directions
+    # take turns, so the 52nd pair (v's 26th) cannot be found.
+    both = {"u": (1, 0), "v": (0, 1)}
+    assert len(grid_pairs(space, axes, both, 51, seed=0, min_steps=2, max_steps=3, max_draws=20_000)) == 51
+    with pytest.raises(ValueError, match="distinct pairs"):
+        grid_pairs(space, axes, both, 52, seed=0, min_steps=2, max_steps=3, max_draws=20_000)
+    periodic = ParamSpace([Parameter("a", 0.0, 360.0, periodic=True), Parameter("v", 0.0, 1.0)])
+    with pytest.raises(ValueError, match="over half"):
+        grid_pairs(periodic, (np.arange(0, 360, 60.0), axes[1]), {"a": (1, 0)}, 3, max_steps=4)
