@@ -4,6 +4,7 @@ A procedurally built heightfield (a raised ring, a stepped block, a round pillar
 flat tile) rendered with Lambertian shading plus hard cast shadows, for lamp azimuth (degrees,
 periodic 0-360, 0 = lamp towards +x, 90 = towards +y) and lamp elevation (degrees above the tile).
 The renderer gives the true image for any settings, so every in-between can be scored against it.
+With colour=True each feature (base tile, ring, block, pillar, groove) has its own RGB albedo.
 
 World units: the tile spans [0, 1] x [0, 1]; heights are in the same units. Image row r, column c
 looks at world (x, y) = ((c + 0.5) / S, (r + 0.5) / S) from straight above.
@@ -25,16 +26,34 @@ DEMO_SPACE = ParamSpace([
     Parameter("lamp_elevation", 20.0, 70.0, unit="deg"),
 ])
 DEMO_NAME = "relief-tile"
+DEMO_COLOUR_NAME = "relief-tile-colour"
+
+
+RGB = tuple[float, float, float]
 
 
 @dataclass(frozen=True)
 class Tile:
-    """Shading constants. Intensity = albedo * max(0, n . l) + ambient, or ambient in shadow."""
+    """Shading constants. Intensity = albedo * max(0, n . l) + ambient, or ambient in shadow.
+
+    Grayscale renders use `albedo` everywhere; colour renders give each feature its own RGB
+    albedo (the same ambient in every channel). Albedo + ambient stays <= 1, so nothing clips.
+    """
     albedo: float = 0.8
     ambient: float = 0.1
     pillar_height: float = 0.10
     pillar_center: tuple[float, float] = (0.72, 0.70)
     pillar_radius: float = 0.06
+    base_rgb: RGB = (0.80, 0.72, 0.58)    # sandstone
+    ring_rgb: RGB = (0.85, 0.38, 0.22)    # terracotta
+    block_rgb: RGB = (0.28, 0.45, 0.80)   # slate blue
+    pillar_rgb: RGB = (0.36, 0.72, 0.30)  # moss green
+    groove_rgb: RGB = (0.55, 0.22, 0.52)  # plum
+
+    def feature_rgb(self) -> dict[str, RGB]:
+        """RGB albedo per feature, in the order the features are laid on the base tile."""
+        return {"ring": self.ring_rgb, "block": self.block_rgb, "groove": self.groove_rgb,
+                "pillar": self.pillar_rgb}
 
 
 def _smoothstep(edge0: float, edge1: float, x: np.ndarray) -> np.ndarray:
@@ -42,28 +61,53 @@ def _smoothstep(edge0: float, edge1: float, x: np.ndarray) -> np.ndarray:
     return u * u * (3.0 - 2.0 * u)
 
 
-def heightfield(size: int, tile: Tile = Tile()) -> np.ndarray:
-    """(size, size) heights in tile units; feature edges are softened over ~1/64 of the tile."""
+def _relief(size: int, tile: Tile) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """(size, size) heights and each feature's soft footprint in [0, 1] (see `feature_rgb`)."""
     c = (np.arange(size) + 0.5) / size
     x, y = np.meshgrid(c, c)  # x along columns, y along rows
     soft = 1.0 / 64.0
     h = np.zeros_like(x)
     # raised ring, lower left
     r = np.hypot(x - 0.30, y - 0.32)
-    h += 0.035 * _smoothstep(0.08, 0.08 + soft, r) * (1.0 - _smoothstep(0.17, 0.17 + soft, r))
-    # stepped block, upper left: two terraces
+    ring_in, ring_out = _smoothstep(0.08, 0.08 + soft, r), 1.0 - _smoothstep(0.17, 0.17 + soft, r)
+    h += 0.035 * ring_in * ring_out
+    # stepped block, upper left: two terraces (the upper one sits on the lower one's footprint)
     in_x = _smoothstep(0.12, 0.12 + soft, x) * (1.0 - _smoothstep(0.45, 0.45 + soft, x))
-    h += 0.025 * in_x * _smoothstep(0.58, 0.58 + soft, y) * (1.0 - _smoothstep(0.88, 0.88 + soft, y))
-    h += 0.025 * in_x * _smoothstep(0.70, 0.70 + soft, y) * (1.0 - _smoothstep(0.88, 0.88 + soft, y))
+    lower_in, upper_in = _smoothstep(0.58, 0.58 + soft, y), _smoothstep(0.70, 0.70 + soft, y)
+    top_out = 1.0 - _smoothstep(0.88, 0.88 + soft, y)
+    h += 0.025 * in_x * lower_in * top_out
+    h += 0.025 * in_x * upper_in * top_out
     # groove, right: a diagonal channel
     d = np.abs((x - 0.62) - 0.55 * (y - 0.25)) / np.hypot(1.0, 0.55)
     along = _smoothstep(0.05, 0.05 + soft, y) * (1.0 - _smoothstep(0.45, 0.45 + soft, y))
-    h -= 0.02 * (1.0 - _smoothstep(0.025, 0.025 + soft, d)) * along
+    channel = 1.0 - _smoothstep(0.025, 0.025 + soft, d)
+    h -= 0.02 * channel * along
     # pillar: a flat-topped cylinder (its top is level, so it reads as a flat patch)
     px, py = tile.pillar_center
     inside = 1.0 - _smoothstep(tile.pillar_radius, tile.pillar_radius + soft / 2,
                                np.hypot(x - px, y - py))
-    return h + inside * (tile.pillar_height - h)
+    masks = {"ring": ring_in * ring_out, "block": in_x * lower_in * top_out, "groove": channel * along,
+             "pillar": inside}
+    return h + inside * (tile.pillar_height - h), masks
+
+
+def heightfield(size: int, tile: Tile = Tile()) -> np.ndarray:
+    """(size, size) heights in tile units; feature edges are softened over ~1/64 of the tile."""
+    return _relief(size, tile)[0]
+
+
+def _blend_albedo(masks: dict[str, np.ndarray], tile: Tile) -> np.ndarray:
+    """(H, W, 3) albedo: the base colour with each feature laid over it by its footprint."""
+    albedo = np.broadcast_to(np.asarray(tile.base_rgb, dtype=np.float64), masks["ring"].shape + (3,))
+    for name, rgb in tile.feature_rgb().items():
+        m = masks[name][..., None]
+        albedo = albedo * (1.0 - m) + np.asarray(rgb, dtype=np.float64) * m  # exact where m is 0 or 1
+    return albedo
+
+
+def albedo_map(size: int, tile: Tile = Tile()) -> np.ndarray:
+    """(size, size, 3) RGB albedo of the colour tile, sampled at pixel centres."""
+    return _blend_albedo(_relief(size, tile)[1], tile)
 
 
 def lamp_vector(azimuth_deg: float, elevation_deg: float) -> np.ndarray:
@@ -97,24 +141,32 @@ def shadow_mask(h: np.ndarray, azimuth_deg: float, elevation_deg: float, *,
 
 
 def render(azimuth_deg: float, elevation_deg: float, size: int = 64, *, tile: Tile = Tile(),
-           supersample: int = 2) -> np.ndarray:
-    """(size, size) float32 image in [0, 1] of the tile lit from the given lamp direction (degrees)."""
+           supersample: int = 2, colour: bool = False) -> np.ndarray:
+    """Float32 image in [0, 1] of the tile lit from the given lamp direction (degrees).
+
+    (size, size) grayscale, or (size, size, 3) RGB with colour=True (per-feature albedo).
+    """
     hi = size * supersample
-    h = heightfield(hi, tile)
+    h, masks = _relief(hi, tile)
     gy, gx = np.gradient(h, 1.0 / hi)  # slopes, rows = y
     n = np.stack([-gx, -gy, np.ones_like(h)], axis=-1)
     n /= np.linalg.norm(n, axis=-1, keepdims=True)
     lamp = lamp_vector(azimuth_deg, elevation_deg)
     lit = np.clip(n @ lamp, 0.0, None)
     lit = np.where(shadow_mask(h, azimuth_deg, elevation_deg), 0.0, lit)
-    img = tile.albedo * lit + tile.ambient
-    img = img.reshape(size, supersample, size, supersample).mean(axis=(1, 3))  # box anti-aliasing
+    if colour:
+        img = _blend_albedo(masks, tile) * lit[..., None] + tile.ambient
+        img = img.reshape(size, supersample, size, supersample, 3).mean(axis=(1, 3))  # box anti-aliasing
+    else:
+        img = tile.albedo * lit + tile.ambient
+        img = img.reshape(size, supersample, size, supersample).mean(axis=(1, 3))  # box anti-aliasing
     return np.clip(img, 0.0, 1.0).astype(np.float32)
 
 
-def render_many(params: np.ndarray, size: int = 64) -> np.ndarray:
-    """(N, 2) settings (azimuth, elevation) to (N, size, size, 1) images."""
-    return np.stack([render(a, e, size) for a, e in np.asarray(params, dtype=np.float64)])[..., None]
+def render_many(params: np.ndarray, size: int = 64, *, colour: bool = False) -> np.ndarray:
+    """(N, 2) settings (azimuth, elevation) to (N, size, size, 1) images, (N, size, size, 3) in colour."""
+    imgs = np.stack([render(a, e, size, colour=colour) for a, e in np.asarray(params, dtype=np.float64)])
+    return imgs if colour else imgs[..., None]
 
 
 # -- the demo scene folder and its truth set ------------------------------------------------------
@@ -194,20 +246,26 @@ def truth_pairs(count: int = 90, *, seed: int = 0, min_steps: int = 2, max_steps
                       min_steps=min_steps, max_steps=max_steps)
 
 
-def write_demo(out: str | Path, *, size: int = 64, pairs: int = 90, seed: int = 0) -> tuple[Path, Path]:
-    """Write OUT/scene (training scene folder, 144 grid renders) and OUT/truth (see `write_truth`)."""
+def write_demo(out: str | Path, *, size: int = 64, pairs: int = 90, seed: int = 0,
+               colour: bool = False) -> tuple[Path, Path]:
+    """Write OUT/scene (training scene folder, 144 grid renders) and OUT/truth (see `write_truth`).
+
+    colour=True writes the colour tile (RGB PNGs) under the name DEMO_COLOUR_NAME.
+    """
     from .scene import save_scene
 
     out = Path(out)
     grid = demo_grid()
-    scene_dir = save_scene(out / "scene", DEMO_NAME, DEMO_SPACE, render_many(grid, size), grid)
-    truth_dir = write_truth(out / "truth", truth_pairs(pairs, seed=seed), size=size)
+    name = DEMO_COLOUR_NAME if colour else DEMO_NAME
+    scene_dir = save_scene(out / "scene", name, DEMO_SPACE, render_many(grid, size, colour=colour), grid)
+    truth_dir = write_truth(out / "truth", truth_pairs(pairs, seed=seed), size=size, colour=colour)
     return scene_dir, truth_dir
 
 
-def write_truth(out: str | Path, pairs: list[dict], *, size: int = 64) -> Path:
+def write_truth(out: str | Path, pairs: list[dict], *, size: int = 64, colour: bool = False) -> Path:
     """The demo's truth set (see `write_truth_set`), rendered at size x size pixels."""
-    return write_truth_set(out, pairs, lambda p: render(float(p[0]), float(p[1]), size), DEMO_SPACE)
+    return write_truth_set(out, pairs, lambda p: render(float(p[0]), float(p[1]), size, colour=colour),
+                           DEMO_SPACE)
 
 
 def write_truth_set(out: str | Path, pairs: list[dict], view: Callable[[np.ndarray], np.ndarray],

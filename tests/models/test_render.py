@@ -3,8 +3,8 @@ import numpy as np
 import pytest
 
 from models.params import Parameter, ParamSpace
-from models.render import (DEMO_SPACE, Tile, demo_grid, grid_pairs, heightfield, render, shadow_mask,
-                           truth_pairs)
+from models.render import (DEMO_SPACE, Tile, albedo_map, demo_grid, grid_pairs, heightfield, render,
+                           render_many, shadow_mask, truth_pairs)
 
 
 @pytest.mark.parametrize("azimuth, elevation", [(0, 20), (75, 35), (200, 50), (310, 70)])
@@ -102,3 +102,69 @@ def test_grid_pairs_keep_non_periodic_ends_on_the_grid_and_refuse_too_many():
     periodic = ParamSpace([Parameter("a", 0.0, 360.0, periodic=True), Parameter("v", 0.0, 1.0)])
     with pytest.raises(ValueError, match="over half"):
         grid_pairs(periodic, (np.arange(0, 360, 60.0), axes[1]), {"a": (1, 0)}, 3, max_steps=4)
+
+
+# -- the colour tile ----------------------------------------------------------------------------
+# Level patches inside each feature at 64 px (row slice, column slice), from the layout in
+# heightfield(): floor near (x, y) = (0.9, 0.1), ring top left of its centre (0.30, 0.32), the block's
+# upper terrace, the pillar's top around (0.72, 0.70), the groove's floor on its centre line at y = 0.25.
+LEVEL_PATCHES = {"base": (slice(4, 8), slice(56, 60)), "ring": (slice(19, 22), slice(9, 11)),
+                 "block": (slice(49, 53), slice(15, 20)), "pillar": (slice(43, 46), slice(45, 47)),
+                 "groove": (slice(15, 17), slice(39, 40))}
+
+
+@pytest.mark.parametrize("azimuth, elevation", [(0, 70), (100, 60), (200, 65), (300, 55), (45, 40)])
+def test_colour_level_patches_follow_lamberts_cosine_law_per_channel(azimuth, elevation):
+    # Lambert (1760), Photometria: a matte level patch lit from elevation e reads
+    # albedo * sin(e) + ambient, channel by channel, with that feature's own RGB albedo.
+    tile = Tile()
+    img = render(azimuth, elevation, 64, colour=True)
+    assert img.shape == (64, 64, 3) and img.dtype == np.float32
+    albedo = {"base": tile.base_rgb, **tile.feature_rgb()}
+    for name, (rows, cols) in LEVEL_PATCHES.items():
+        expected = np.asarray(albedo[name]) * np.sin(np.radians(elevation)) + tile.ambient
+        patch = img[rows, cols].reshape(-1, 3)
+        assert patch == pytest.approx(np.broadcast_to(expected, patch.shape), abs=2e-6), name
+
+
+@pytest.mark.parametrize("azimuth, elevation", [(75, 35), (250, 20)])
+def test_colour_is_the_gray_lambert_term_scaled_per_channel_and_shadows_are_ambient(azimuth, elevation):
+    # Lambert's law is linear in the albedo (common practice): where every sub-sample of a pixel
+    # sees the same albedo, colour_c - ambient = albedo_c / albedo_gray * (gray - ambient).
+    tile, size, ss = Tile(), 64, 2
+    gray, colour = render(azimuth, elevation, size), render(azimuth, elevation, size, colour=True)
+    albedo = albedo_map(size * ss, tile).reshape(size, ss, size, ss, 3)
+    uniform = np.all(albedo.max(axis=(1, 3)) == albedo.min(axis=(1, 3)), axis=-1)
+    assert uniform.mean() > 0.8
+    scale = albedo[:, 0, :, 0, :] / tile.albedo
+    want = scale * (gray[..., None].astype(np.float64) - tile.ambient) + tile.ambient
+    assert colour[uniform] == pytest.approx(want[uniform], abs=2e-6)
+    # fully shadowed pixels get the ambient term alone, in every channel
+    dark = shadow_mask(heightfield(size * ss, tile), azimuth, elevation).reshape(size, ss, size, ss).all(axis=(1, 3))
+    assert dark.sum() > 20
+    assert colour[dark] == pytest.approx(np.full((int(dark.sum()), 3), tile.ambient), abs=1e-7)
+    assert gray[dark] == pytest.approx(np.full(int(dark.sum()), tile.ambient), abs=1e-7)
+
+
+def test_each_feature_has_its_own_colour_and_render_many_keeps_channels():
+    tile = Tile()
+    albedo = albedo_map(64, tile)
+    seen = {tuple(albedo[rows, cols].reshape(-1, 3)[0]) for rows, cols in LEVEL_PATCHES.values()}
+    assert len(seen) == 5
+    grid = demo_grid()[:2]
+    assert render_many(grid, 16).shape == (2, 16, 16, 1)
+    rgb = render_many(grid, 16, colour=True)
+    assert rgb.shape == (2, 16, 16, 3) and 0.0 <= rgb.min() and rgb.max() <= 1.0
+
+
+def test_grayscale_render_is_unchanged_by_the_colour_option():
+    # Pixel values of render(75, 35, 64) taken from the code before the colour option was added.
+    pinned = {(17, 38): 0.3544318377971649, (37, 48): 0.4441458582878113, (27, 42): 0.5601897239685059,
+              (19, 23): 0.557149350643158, (5, 37): 0.5507487058639526, (47, 49): 0.6412087082862854,
+              (36, 20): 0.10000000149011612}
+    img = render(75.0, 35.0, 64)
+    assert img.shape == (64, 64)
+    assert np.array_equal(img, render(75.0, 35.0, 64, colour=False))
+    for (r, c), v in pinned.items():
+        assert float(img[r, c]) == pytest.approx(v, abs=1e-6)
+    assert float(img.astype(np.float64).sum()) == pytest.approx(2154.3320073634386, abs=1e-3)
