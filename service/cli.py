@@ -38,7 +38,8 @@ def _print_json(obj) -> None:
 def cmd_render_demo(args) -> int:
     from models.render import write_demo
 
-    scene_dir, truth_dir = write_demo(args.out, size=args.size, pairs=args.pairs, seed=args.seed)
+    scene_dir, truth_dir = write_demo(args.out, size=args.size, pairs=args.pairs, seed=args.seed,
+                                      colour=args.colour)
     print(f"scene: {scene_dir}\ntruth: {truth_dir}")
     return EXIT_OK
 
@@ -232,6 +233,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--size", type=int, default=64, help="pixels per side")
     s.add_argument("--pairs", type=int, default=90, help="truth pairs")
     s.add_argument("--seed", type=int, default=0)
+    s.add_argument("--colour", action="store_true",
+                   help="the colour tile: each feature its own RGB albedo (RGB PNGs)")
     s.set_defaults(func=cmd_render_demo)
 
     s = sub.add_parser("train", help="train a model on a scene folder and register it")

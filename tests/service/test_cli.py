@@ -24,6 +24,21 @@ def test_render_demo_writes_scene_and_truth(demo_dir):
             assert (demo_dir / "truth" / f["image"]).is_file()
 
 
+def test_render_demo_colour_writes_rgb_scene_and_truth(tmp_path):
+    from PIL import Image
+
+    from models.evaluate import load_truth
+    from models.scene import load_scene
+
+    assert main(["render-demo", str(tmp_path), "--size", "16", "--pairs", "2", "--colour"]) == 0
+    scene = load_scene(tmp_path / "scene", resolution=16)
+    assert scene.name == "relief-tile-colour" and scene.channels == 3 and len(scene) == 144
+    pairs = load_truth(tmp_path / "truth", 16, 3)
+    assert len(pairs) == 2 and pairs[0]["truth"].shape == (5, 16, 16, 3)
+    with Image.open(tmp_path / "truth" / "p000_t1.png") as img:
+        assert img.mode == "RGB"
+
+
 def test_train_registers_and_models_lists(demo_dir, tmp_path, capsys):
     reg = str(tmp_path / "reg")
     code = main(["--registry", reg, "train", str(demo_dir / "scene"), "--name", "tile", "--resolution", "16",
