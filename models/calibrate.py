@@ -8,7 +8,9 @@ signals of those frames, labelled by SSIM(frame, truth) >= tau, fit a combiner a
 calibrator (`models.confidence.fit_confidence`); ECE and AUROC are measured on rows not used to fit.
 The same bracketed held-out samples first choose the geodesic's tube radius (`Engine.tube`): the
 candidate whose route frames match the held-out truth best (mean PSNR), so the confidence is then
-fitted on the routes the model will serve.
+fitted on the routes the model will serve. They then decide whether the model refines its frames
+with detail from the nearest real images (`choose_refine`): on only when that wins on the held-out
+truth, and the confidence is fitted on the frames exactly as served, refined or not.
 """
 from __future__ import annotations
 
@@ -19,10 +21,13 @@ from .bundle import Bundle
 from .confidence import fit_confidence
 from .engine import ROUTES, Engine
 from .metrics import psnr_batch, ssim_batch
+from .refine import RefineConfig
 from .triplets import mine_triplets
 
 DEFAULT_TAU = 0.90
 TUBES = (0.75, 1.0, 1.25, 1.5, 2.0)  # candidate tube radii, in bank spacings
+REFINE_MARGIN_DB = 0.2  # detail transfer must win by this much mean PSNR on the held-out truth
+REFINE_TOLERANCES = (0.03, 0.05)  # candidate trust tolerances (models.refine); the first is the safe default
 
 
 def bracketed(engine: Engine, holdout_params: np.ndarray, *, span: float = 6.0, tolerance: float = 0.15,
@@ -69,6 +74,40 @@ def choose_tube(engine: Engine, holdout_params: np.ndarray, holdout_images: np.n
     return best, {str(c): round(v, 3) for c, v in scores.items()}
 
 
+def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
+                  tolerances=REFINE_TOLERANCES, seed: int = 0) -> dict:
+    """Turn detail transfer on (engine.refine) when, with the best of the candidate tolerances, it
+    beats the decoded geodesic frames on the held-out truth by REFINE_MARGIN_DB mean PSNR without
+    lowering mean SSIM; returns the manifest entry
+    {"on", "config", "holdout": {"decoded": {...}, "refined": {...}, "by_tolerance": {...}}}."""
+    s, m, t, a = bracketed(engine, holdout_params, seed=seed)
+    engine.refine = None
+    entry = {"on": False, "config": RefineConfig(tolerance=float(tolerances[0])).to_dict(), "holdout": {}}
+    if len(s) == 0:
+        return entry
+    codes = route_codes(engine, s, t, a, "geodesic")
+    truth = holdout_images[m]
+
+    def scored(img: np.ndarray) -> dict:
+        return {"psnr": round(float(np.mean(np.minimum(psnr_batch(img, truth), 99.0))), 3),
+                "ssim": round(float(np.mean(ssim_batch(img, truth))), 4)}
+
+    decoded = engine.decode(codes)
+    dec = scored(decoded)
+    tried = {}
+    for tol in map(float, tolerances):
+        cfg = RefineConfig(tolerance=tol)
+        refined, detail = engine.refined(codes, decoded, cfg)
+        tried[tol] = {**scored(refined), "detail": round(float(np.mean(detail)), 4)}
+    best = max(tried, key=lambda k: (tried[k]["psnr"], -k))
+    ref = tried[best]
+    entry.update(config=RefineConfig(tolerance=best).to_dict(),
+                 holdout={"decoded": dec, "refined": ref, "by_tolerance": {str(k): v for k, v in tried.items()}})
+    entry["on"] = bool(ref["psnr"] >= dec["psnr"] + REFINE_MARGIN_DB and ref["ssim"] >= dec["ssim"])
+    engine.refine = RefineConfig(tolerance=best) if entry["on"] else None
+    return entry
+
+
 def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
                        span: float = 6.0, tolerance: float = 0.15, max_triplets: int = 400,
                        seed: int = 0) -> tuple[np.ndarray, np.ndarray, list[str]]:
@@ -87,7 +126,7 @@ def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_image
     truth += list(range(len(holdout_params)))
     kinds += ["fill"] * len(holdout_params)
     codes = np.asarray(codes)
-    images = engine.decode(codes)
+    images = engine.render(codes)[0]  # as served: refined when the model refines
     sig = engine.signals(codes, images, np.asarray(intended))
     ssim = ssim_batch(images, holdout_images[np.asarray(truth)])
     return sig, ssim, kinds
@@ -115,14 +154,16 @@ def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images:
 
 def fit_serving(result, scene, arrays: dict[str, np.ndarray], *, tau: float = DEFAULT_TAU) -> dict:
     """Straight after training, from the in-memory model and bank arrays: the route's tube and
-    the confidence model. Returns {"route", "confidence", "report"} for the bundle."""
+    the confidence model. Returns {"route", "refine", "confidence", "report"} for the bundle."""
     stored = {k: (np.round(np.clip(v, 0, 1) * 255).astype(np.uint8) if "images" in k else v)
               for k, v in arrays.items()}
     manifest = {"scale": [float(s) for s in result.scale], "resolution": result.model_config.resolution,
                 "channels": result.model_config.channels, "confidence": None}
-    engine = Engine(Bundle(manifest, result.model, scene.space, stored), tube=TUBES[0])
+    engine = Engine(Bundle(manifest, result.model, scene.space, stored), tube=TUBES[0], refine=False)
     seed = result.train_config.seed
     tube, by_tube = choose_tube(engine, arrays["holdout_params"], arrays["holdout_images"], seed=seed)
+    refine = choose_refine(engine, arrays["holdout_params"], arrays["holdout_images"], seed=seed)
     confidence, report = calibrate_engine(engine, arrays["holdout_params"], arrays["holdout_images"], tau=tau,
                                           seed=seed)
-    return {"route": {"tube": tube, "holdout_psnr_by_tube": by_tube}, "confidence": confidence, "report": report}
+    return {"route": {"tube": tube, "holdout_psnr_by_tube": by_tube}, "refine": refine, "confidence": confidence,
+            "report": report}

@@ -30,7 +30,9 @@ from . import graph as lgraph
 from . import route as lroute
 from .bundle import Bundle, load_bundle
 from .confidence import ConfidenceModel
+from . import refine as lrefine
 from .nets import inference_copy
+from .refine import RefineConfig
 from .train import to_images, to_tensor
 from .triplets import normalised_coords
 
@@ -62,6 +64,7 @@ class Frame:
     confidence: float | None   # calibrated probability that SSIM against the true view >= tau
     accepted: bool
     signals: dict[str, float] = field(default_factory=dict)
+    detail: float | None = None  # share of pixels carried over from real bank images (None: not refined)
 
 
 class FrameCounts:
@@ -90,7 +93,7 @@ class Answer(FrameCounts):
 class Engine:
     def __init__(self, bundle: Bundle, *, graph_k: int | None = None, relax_rounds: int = 20,
                  relax_step: float = 0.5, project_rounds: bool = False, chart_neighbours: int = 6,
-                 attach: int = 3, tube: float | str | None = "bundle"):
+                 attach: int = 3, tube: float | str | None = "bundle", refine: bool | str = "bundle"):
         self.bundle = bundle
         self.model = inference_copy(bundle.model)  # the bundle's own model stays as trained
         self.space = bundle.space
@@ -102,6 +105,11 @@ class Engine:
         # held-out share at training time (1.0 for bundles without one); None = keep the path
         self.tube = (bundle.manifest.get("route") or {}).get("tube", DEFAULT_TUBE) if tube == "bundle" else tube
         self.chart_neighbours = chart_neighbours
+        # detail transfer from the nearest real images: "bundle" = as chosen on the held-out share at
+        # training time (off for bundles without a choice); True / False force it
+        chosen = bundle.manifest.get("refine") or {}
+        on = bool(chosen.get("on", False)) if refine == "bundle" else bool(refine)
+        self.refine = RefineConfig.from_dict(chosen.get("config")) if on else None
         pixels = bundle.pixels()  # read for the pruning test only, not kept
         self.graph = lgraph.build_graph(bundle.codes, k=graph_k, params=bundle.params, space=self.space,
                                         param_scale=self.scale, images=pixels.reshape(len(pixels), -1))
@@ -131,6 +139,28 @@ class Engine:
         from .latent_map import fit_map
 
         return fit_map(self.bundle.codes)
+
+    @cached_property
+    def bank_pixels(self) -> np.ndarray:
+        """The bank's uint8 images, read once when detail transfer first needs them."""
+        return self.bundle.pixels()
+
+    def refined(self, codes: np.ndarray, images: np.ndarray, cfg: RefineConfig | None = None
+                ) -> tuple[np.ndarray, np.ndarray]:
+        """Decoded `images` of `codes` with detail from the nearest bank images (models.refine),
+        and per frame the share of pixels taken from them."""
+        cfg = cfg or self.refine or RefineConfig()
+        k = min(cfg.neighbours, len(self.bundle.codes))
+        _, idx = self.graph.tree.query(self.graph.warp(codes), k=k)
+        refs = self.bank_pixels[np.asarray(idx).reshape(len(codes), k)].astype(np.float32) / 255.0
+        return lrefine.refine(images, refs, cfg)
+
+    def render(self, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+        """The frames as served: decoded, then refined when this model refines; (images, detail)."""
+        images = self.decode(codes)
+        if self.refine is None:
+            return images, None
+        return self.refined(codes, images)
 
     @property
     def resolution(self) -> int:
@@ -269,7 +299,7 @@ class Engine:
         return self.confidence.predict(sig)
 
     def _frames(self, codes, t, intended, min_confidence) -> list[Frame]:
-        images = self.decode(codes)
+        images, detail = self.render(codes)
         shown = self.settings_of(codes)
         sig = self.signals(codes, images, intended, shown)
         conf = self.score(sig)
@@ -278,7 +308,8 @@ class Engine:
             c = None if conf is None else float(conf[i])
             frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(shown[i]),
                                 confidence=c, accepted=c is None or c >= min_confidence,
-                                signals=dict(zip(self.signal_names, map(float, sig[i])))))
+                                signals=dict(zip(self.signal_names, map(float, sig[i]))),
+                                detail=None if detail is None else float(detail[i])))
         return frames
 
     def between(self, start: Endpoint, end: Endpoint, frames: int = 8, route: str = "geodesic",

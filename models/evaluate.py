@@ -1,8 +1,12 @@
 """Quality report against a truth set: in-betweens by each method scored against the true views.
 
-Methods: cross-dissolve of the two end images (what a user would otherwise reach for), the
-straight route between the two end codes, the geodesic route, and the model's own ceiling
-(decode(encode(true frame))), which no latent route can beat. Ends are the truth set's end images.
+Methods: what a user would otherwise reach for (cross-dissolve of the two end images, and dense
+optical-flow warping of both ends, `models.flow.tween`), the straight route between the two end
+codes, the geodesic route, and the model's own ceiling (decode(encode(true frame))), which no
+decoded route can beat. Routes are scored as served: when the model refines its frames with
+detail from real bank images (`models.refine`), the report also carries the decoded geodesic
+frames before refinement ("geodesic_decoded"), and refined frames may exceed the ceiling. Ends are
+the truth set's end images.
 """
 from __future__ import annotations
 
@@ -13,11 +17,12 @@ import numpy as np
 from PIL import Image
 
 from .confidence import auroc, ece
+from . import flow as lflow
 from .engine import Endpoint, Engine
 from .metrics import psnr_batch, ssim_batch
 from .scene import image_to_array
 
-METHODS = ("dissolve", "straight", "geodesic", "ceiling")
+METHODS = ("dissolve", "flow", "straight", "geodesic", "ceiling")
 TRUTH_FORMAT = "geotween-truth/1"
 
 
@@ -60,13 +65,15 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
     if not pairs:
         raise ValueError(f"{truth_dir}: the truth set has no pairs")
     tau = engine.tau if engine.tau is not None else 0.90
-    got = {m: {"psnr": [], "ssim": []} for m in METHODS}
+    methods = METHODS + (("geodesic_decoded",) if engine.refine is not None else ())
+    got = {m: {"psnr": [], "ssim": []} for m in methods}
     pacing = {"straight": [], "geodesic": []}
     conf = {"straight": ([], []), "geodesic": ([], [])}
     rows, mapped = [], []
     for pair in pairs:
         truth, t = pair["truth"], pair["t"]
         outs = {"dissolve": (1 - t)[:, None, None, None] * pair["start_image"] + t[:, None, None, None] * pair["end_image"],
+                "flow": lflow.tween(pair["start_image"], pair["end_image"], t),
                 "ceiling": engine.decode(engine.encode(truth))}
         for route in ("straight", "geodesic"):
             ans = engine.between(Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"]),
@@ -79,7 +86,9 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
                 conf[route][0].extend(f.confidence for f in ans.frames)
             if route == "geodesic" and len(mapped) < sheet_pairs:
                 mapped.append(ans)
-        for m in METHODS:
+            if route == "geodesic" and "geodesic_decoded" in methods:
+                outs["geodesic_decoded"] = engine.decode(ans.codes)
+        for m in methods:
             got[m]["psnr"].append(psnr_batch(outs[m], truth))
             got[m]["ssim"].append(ssim_batch(outs[m], truth))
         for route in ("straight", "geodesic"):
@@ -88,7 +97,7 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
             rows.append((truth, outs))
     report: dict = {"pairs": len(pairs), "frames_per_pair": int(len(pairs[0]["t"])), "tau": tau,
                     "min_confidence": min_confidence, "methods": {}}
-    for m in METHODS:
+    for m in methods:
         report["methods"][m] = _summary(np.concatenate(got[m]["psnr"]), np.concatenate(got[m]["ssim"]))
     for route in ("straight", "geodesic"):
         report["methods"][route]["pacing_error"] = round(float(np.mean(pacing[route])), 4)
@@ -122,8 +131,8 @@ def confidence_summary(prob: np.ndarray, faithful: np.ndarray, min_confidence: f
 
 
 def contact_sheet(rows: list, out: str | Path, *, gap: int = 2) -> Path:
-    """PNG grid: per pair, rows truth / dissolve / straight / geodesic, frames left to right."""
-    labels = ("truth", "dissolve", "straight", "geodesic")
+    """PNG grid: per pair, rows truth / dissolve / flow / straight / geodesic, frames left to right."""
+    labels = ("truth", "dissolve", "flow", "straight", "geodesic")
     blocks = []
     for truth, outs in rows:
         for lab in labels:
@@ -141,12 +150,12 @@ def contact_sheet(rows: list, out: str | Path, *, gap: int = 2) -> Path:
 
 
 def format_table(report: dict) -> str:
-    lines = [f"{'method':<10} {'PSNR dB':>8} {'SSIM':>7} {'p10 dB':>7} {'pacing':>7} {'ECE':>6} {'AUROC':>6}"]
-    for m in METHODS:
+    lines = [f"{'method':<16} {'PSNR dB':>8} {'SSIM':>7} {'p10 dB':>7} {'pacing':>7} {'ECE':>6} {'AUROC':>6}"]
+    for m in report["methods"]:
         r = report["methods"][m]
         c = r.get("confidence", {})
         pace = f"{r['pacing_error']:.3f}" if "pacing_error" in r else "-"
         e = f"{c['ece']:.3f}" if c else "-"
         a = f"{c['auroc']:.3f}" if c and c.get("auroc") is not None else "-"
-        lines.append(f"{m:<10} {r['psnr']:8.2f} {r['ssim']:7.4f} {r['psnr_p10']:7.2f} {pace:>7} {e:>6} {a:>6}")
+        lines.append(f"{m:<16} {r['psnr']:8.2f} {r['ssim']:7.4f} {r['psnr_p10']:7.2f} {pace:>7} {e:>6} {a:>6}")
     return "\n".join(lines)

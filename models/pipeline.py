@@ -37,7 +37,8 @@ def train_bundle(scene: Scene, out: str | Path, *, name: str, model_config: Mode
     if calibrate:
         from .calibrate import fit_serving
         fitted = fit_serving(result, scene, arrays, tau=result.train_config.confidence_tau)
-        confidence, metrics["confidence"], extra["route"] = fitted["confidence"], fitted["report"], fitted["route"]
+        confidence, metrics["confidence"] = fitted["confidence"], fitted["report"]
+        extra["route"], extra["refine"] = fitted["route"], fitted["refine"]
     return save_bundle(out, name=name, model=result.model, model_config=result.model_config,
                        train_config=result.train_config, space=scene.space, scale=result.scale,
                        arrays=arrays, metrics=metrics, confidence=confidence,

@@ -1,0 +1,83 @@
+"""Detail transfer from real images: it falls back to the decoded frame where real images disagree,
+and brings texture back where they agree."""
+import numpy as np
+import pytest
+from scipy.ndimage import gaussian_filter
+
+from models import refine as lrefine
+from models.engine import Endpoint, Engine
+from models.metrics import psnr, psnr_batch
+from models.render import render
+
+skdata = pytest.importorskip("skimage.data")
+
+
+def blurred(img, sigma=1.0):
+    """A stand-in for a decoder's output: the true frame with its fine detail blurred away."""
+    return gaussian_filter(img, (sigma, sigma, 0))
+
+
+def test_references_equal_to_the_frame_leave_it_unchanged():
+    rng = np.random.default_rng(0)
+    frame = blurred(rng.random((32, 32, 3)).astype(np.float32), 2.0)
+    out, detail = lrefine.refine_frame(frame, np.stack([frame, frame]))
+    assert np.allclose(out, frame, atol=2e-3) and detail > 0.9
+
+
+def test_disagreeing_references_fall_back_to_the_decoded_frame():
+    frame = np.full((32, 32, 1), 0.7, np.float32)
+    other = np.full((32, 32, 1), 0.1, np.float32)  # a different exposure: no pixel agrees
+    out, detail = lrefine.refine_frame(frame, other[None])
+    assert np.allclose(out, frame, atol=1e-4) and detail < 1e-3
+
+
+def test_lamp_scene_a_real_lamp_neighbour_never_makes_a_frame_worse():
+    # True renders of the relief tile (Lambert shading, cast shadows) at lamp settings between grid
+    # points; references are the renders at the bracketing grid points, 15 deg / 10 deg away, where
+    # shadows sit elsewhere: flow cannot explain a moving light, so the step must fall back.
+    gains = []
+    for az in np.arange(5.0, 360.0, 50.0):
+        for el in (27.0, 53.0):
+            truth = render(az, el, 32)[..., None]
+            a0, e0 = np.floor(az / 15) * 15, 20 + np.floor((el - 20) / 10) * 10
+            refs = np.stack([render(a0, e0, 32), render(a0 + 15, e0 + 10, 32)])[..., None]
+            out, _ = lrefine.refine_frame(blurred(truth), refs)
+            gains.append(psnr(out, truth) - psnr(blurred(truth), truth))
+    assert min(gains) > -0.1, np.round(gains, 2)
+
+
+def photo_view(photo, x, y, side, size=32):
+    from PIL import Image
+
+    box = (x, y, x + side, y + side)
+    return np.asarray(Image.fromarray(photo).resize((size, size), Image.BILINEAR, box=box), np.float32) / 255.0
+
+
+def test_textured_scene_gets_its_detail_back_from_neighbouring_views():
+    # scikit-image's "coffee" photograph (ships inside the wheel), seen through a window that pans
+    photo = skdata.coffee()
+    gains = []
+    for x in (40.0, 130.0, 220.0, 310.0):
+        truth = photo_view(photo, x + 6.0, 60.0, 240.0)
+        refs = np.stack([photo_view(photo, x, 60.0, 240.0), photo_view(photo, x + 12.0, 60.0, 240.0)])
+        out, detail = lrefine.refine_frame(blurred(truth), refs)
+        gains.append(psnr(out, truth) - psnr(blurred(truth), truth))
+        assert detail > 0.5
+    assert min(gains) > 1.0, np.round(gains, 2)
+
+
+def test_engine_refinement_on_the_lamp_scene_stays_within_a_small_tolerance(small_engine, small_scene):
+    # the trained tiny model's decoded frames against the true renders, refined or not
+    on = Engine(small_engine.bundle, refine=True)
+    assert on.refine is not None and small_engine.refine is None or small_engine.refine is not None
+    p0, p1 = np.array([0.0, 30.0]), np.array([90.0, 50.0])
+    worst = np.inf
+    for route in ("geodesic", "straight"):
+        ans = on.between(Endpoint(params=dict(lamp_azimuth=0.0, lamp_elevation=30.0)),
+                         Endpoint(params=dict(lamp_azimuth=90.0, lamp_elevation=50.0)), frames=6, route=route)
+        truth = np.stack([render(*on.space.lerp(p0, p1, f.t), 16)[..., None] for f in ans.frames])
+        refined = np.stack([f.image for f in ans.frames])
+        decoded = on.decode(ans.codes)
+        assert all(f.detail is not None for f in ans.frames)
+        worst = min(worst, float(np.min(psnr_batch(refined, truth) - psnr_batch(decoded, truth))))
+    assert worst > -1.0, worst
