@@ -1,4 +1,4 @@
-"""Shared set-up for the benchmark scripts: the demo scene rendered once into a cache folder."""
+"""Shared set-up for the benchmark scripts: the scenes, rendered once into a cache folder."""
 from __future__ import annotations
 
 import os
@@ -10,16 +10,34 @@ sys.path.insert(0, str(ROOT))
 CACHE = Path(os.environ.get("GEOTWEEN_BENCH_CACHE", ROOT / "bench" / ".cache"))
 
 
-def demo_folders(size: int = 64, pairs: int = 90) -> tuple[Path, Path]:
-    """(scene folder, truth folder) of the demo at `size` px with `pairs` truth pairs, rendered
-    on first use into GEOTWEEN_BENCH_CACHE (default bench/.cache)."""
+SCENES = ("demo", "colour", "photo")  # grey relief tile, its colour variant, the photo window
+
+
+def scene_folders(kind: str = "demo", size: int = 64, pairs: int = 90) -> tuple[Path, Path]:
+    """(scene folder, truth folder) of one scene at `size` px with `pairs` truth pairs, written on
+    first use into GEOTWEEN_BENCH_CACHE (default bench/.cache). "photo" is scikit-image's "coffee"
+    photograph (it ships inside the scikit-image wheel) through the panning, zooming window."""
     from models.render import write_demo
 
+    if kind not in SCENES:
+        raise ValueError(f"scene kind {kind!r}: expected one of {SCENES}")
     cache = Path(os.environ.get("GEOTWEEN_BENCH_CACHE", CACHE))
-    out = cache / (f"demo-{size}" if pairs == 90 else f"demo-{size}-{pairs}")
+    out = cache / (f"{kind}-{size}" if pairs == 90 else f"{kind}-{size}-{pairs}")
     if not (out / "truth" / "truth.json").is_file():
-        write_demo(out, size=size, pairs=pairs)
+        if kind == "photo":
+            from skimage.data import coffee
+
+            from models.photo import write_photo_scene
+
+            write_photo_scene(coffee(), out, size=size, pairs=pairs)
+        else:
+            write_demo(out, size=size, pairs=pairs, colour=kind == "colour")
     return out / "scene", out / "truth"
+
+
+def demo_folders(size: int = 64, pairs: int = 90) -> tuple[Path, Path]:
+    """The grey demo scene's folders (`scene_folders("demo", ...)`)."""
+    return scene_folders("demo", size, pairs)
 
 
 def set_threads() -> None:

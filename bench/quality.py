@@ -1,10 +1,12 @@
-"""In-between quality on the demo truth set, against baselines, with confidence calibration.
+"""In-between quality on a scene's truth set, against baselines, with confidence calibration.
 
-    python bench/quality.py [--resolution 64] [--steps N] [--budget-seconds S] [--out DIR]
+    python bench/quality.py [--scene demo|colour|photo] [--resolution 64] [--preset default|quality]
+                            [--steps N] [--budget-seconds S] [--out DIR]
 
-Trains the demo model (default settings unless told), with calibration, then runs the eval
-report: cross-dissolve, straight route, geodesic route, the model's ceiling; PSNR, SSIM, p10,
-pacing, confidence ECE / AUROC / confusion; and route and 16-frame answer times.
+Trains the scene's model (the preset's settings unless told), with calibration, then runs the
+eval report: cross-dissolve, optical-flow warping, straight route, geodesic route (as served,
+refined when the model refines, plus the decoded frames before refinement), the model's ceiling;
+PSNR, SSIM, p10, pacing, confidence ECE / AUROC / confusion; and route and 16-frame answer times.
 """
 from __future__ import annotations
 
@@ -16,25 +18,27 @@ from pathlib import Path
 
 import numpy as np
 
-from common import demo_folders, set_threads
+from common import scene_folders, set_threads
 
 
 def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: float | None = None,
-            out: Path | None = None, pairs: int = 90) -> dict:
+            out: Path | None = None, pairs: int = 90, scene_kind: str = "demo", preset: str = "default") -> dict:
     from models.engine import Endpoint, Engine
     from models.evaluate import evaluate
     from models.pipeline import train_bundle
     from models.scene import load_scene
-    from models.train import TrainConfig
+    from models.train import preset_configs
 
-    scene_dir, truth_dir = demo_folders(resolution, pairs=pairs)
+    scene_dir, truth_dir = scene_folders(scene_kind, resolution, pairs=pairs)
     scene = load_scene(scene_dir, resolution=resolution)
     out = Path(out or tempfile.mkdtemp(prefix="geotween-bench-"))
-    cfg = TrainConfig(budget_seconds=budget_seconds)
+    mcfg, cfg = preset_configs(scene, preset)
+    cfg.budget_seconds = budget_seconds
     if steps is not None:
         cfg.steps = steps
     t0 = time.perf_counter()
-    manifest = train_bundle(scene, out / "bundle", name="relief-tile", train_config=cfg, progress=None)
+    manifest = train_bundle(scene, out / "bundle", name=scene.name, model_config=mcfg, train_config=cfg,
+                            progress=None)
     train_wall = time.perf_counter() - t0
     engine = Engine.load(out / "bundle")
     report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png")
@@ -52,7 +56,8 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
         engine.between(Endpoint(image=imgs[i]), Endpoint(image=imgs[-1 - i]), frames=16)
         times.append((time.perf_counter() - t) * 1e3)
     conf = manifest["metrics"].get("confidence", {})
-    summary = {"resolution": resolution, "train_seconds_incl_calibration": round(train_wall, 1),
+    summary = {"scene": scene_kind, "preset": preset, "resolution": resolution,
+               "train_seconds_incl_calibration": round(train_wall, 1), "refine": manifest.get("refine"),
                "fit": {k: v for k, v in manifest["metrics"].items() if k != "confidence"},
                "calibration": {k: conf.get(k) for k in ("status", "rows", "ece", "auroc", "method")},
                "route": manifest.get("route"),
@@ -68,7 +73,13 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
 def main() -> None:
     from models.evaluate import format_table
 
+    from common import SCENES
+
+    from models.train import PRESETS
+
     p = argparse.ArgumentParser()
+    p.add_argument("--scene", choices=SCENES, default="demo")
+    p.add_argument("--preset", choices=sorted(PRESETS), default="default")
     p.add_argument("--resolution", type=int, default=64)
     p.add_argument("--steps", type=int, default=None)
     p.add_argument("--budget-seconds", type=float, default=None)
@@ -76,7 +87,7 @@ def main() -> None:
     args = p.parse_args()
     set_threads()
     summary = measure(args.resolution, steps=args.steps, budget_seconds=args.budget_seconds,
-                      out=Path(args.out) if args.out else None)
+                      out=Path(args.out) if args.out else None, scene_kind=args.scene, preset=args.preset)
     print(format_table(summary["report"]))
     print(json.dumps({k: v for k, v in summary.items() if k != "report"}, indent=1))
 

@@ -27,7 +27,7 @@ from .triplets import mine_triplets
 DEFAULT_TAU = 0.90
 TUBES = (0.75, 1.0, 1.25, 1.5, 2.0)  # candidate tube radii, in bank spacings
 REFINE_MARGIN_DB = 0.2  # detail transfer must win by this much mean PSNR on the held-out truth
-REFINE_TOLERANCES = (0.03, 0.05)  # candidate trust tolerances (models.refine); the first is the safe default
+REFINE_TOLERANCES = (0.05, 0.03)  # candidate trust tolerances (models.refine); the first is the default
 
 
 def bracketed(engine: Engine, holdout_params: np.ndarray, *, span: float = 6.0, tolerance: float = 0.15,

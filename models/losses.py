@@ -30,3 +30,31 @@ def isometry(z_a: torch.Tensor, z_b: torch.Tensor, settings_distance: torch.Tens
     """
     code = (z_a - z_b).pow(2).sum(-1).add(eps).sqrt()
     return (torch.log(code) - torch.log(settings_distance)).pow(2).mean()
+
+
+def _gaussian_taps(sigma: float = 1.5, truncate: float = 3.5) -> torch.Tensor:
+    r = int(truncate * sigma + 0.5)
+    x = torch.arange(-r, r + 1, dtype=torch.float32)
+    g = torch.exp(-0.5 * (x / sigma) ** 2)
+    return g / g.sum()
+
+
+def ssim(x_hat: torch.Tensor, x: torch.Tensor, *, k1: float = 0.01, k2: float = 0.03) -> torch.Tensor:
+    """Mean SSIM of (B, C, H, W) images in [0, 1]: Gaussian window (sigma 1.5, 11 taps), population
+    statistics, computed only where the window fits, as `models.metrics.ssim` and scikit-image's
+    structural_similarity(gaussian_weights=True, use_sample_covariance=False) do."""
+    c = x.shape[1]
+    g = _gaussian_taps().to(x)
+    gx = g.view(1, 1, 1, -1).repeat(c, 1, 1, 1)
+    gy = g.view(1, 1, -1, 1).repeat(c, 1, 1, 1)
+
+    def blur(v: torch.Tensor) -> torch.Tensor:
+        return F.conv2d(F.conv2d(v, gx, groups=c), gy, groups=c)
+
+    mu_a, mu_b = blur(x_hat), blur(x)
+    var_a = blur(x_hat * x_hat) - mu_a ** 2
+    var_b = blur(x * x) - mu_b ** 2
+    cov = blur(x_hat * x) - mu_a * mu_b
+    c1, c2 = k1 ** 2, k2 ** 2
+    s = ((2 * mu_a * mu_b + c1) * (2 * cov + c2)) / ((mu_a ** 2 + mu_b ** 2 + c1) * (var_a + var_b + c2))
+    return s.mean()

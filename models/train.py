@@ -35,6 +35,7 @@ class TrainConfig:
     w_collinear: float = 1.0
     w_isometry: float = 0.05
     w_heads: float = 0.05
+    w_ssim: float = 0.0            # weight of (1 - SSIM) beside the pixel loss
     triplet_span: float = 3.0      # spacing units
     triplet_tolerance: float = 0.15
     holdout: float = 0.15
@@ -116,6 +117,24 @@ def _lr_at(done: float, cfg: TrainConfig) -> float:
     return low + 0.5 * (cfg.lr - low) * (1 + math.cos(math.pi * u))
 
 
+# Training presets: (ModelConfig overrides, TrainConfig overrides). "default" keeps the demo within
+# its training-time target on 2 cores; "quality" trains longer with a wider latent and an SSIM term
+# (times and gains per scene in bench/RESULTS.md).
+PRESETS: dict[str, tuple[dict, dict]] = {
+    "default": ({}, {}),
+    "quality": ({"latent_dim": 8}, {"steps": 4800, "w_ssim": 0.2}),
+}
+
+
+def preset_configs(scene: Scene, preset: str = "default", **model_overrides) -> tuple[ModelConfig, "TrainConfig"]:
+    """(ModelConfig, TrainConfig) of a named preset for `scene`; explicit overrides win."""
+    if preset not in PRESETS:
+        raise ValueError(f"preset: {preset!r} is not allowed; expected one of {sorted(PRESETS)}")
+    model_kw, train_kw = PRESETS[preset]
+    mcfg = default_model_config(scene, **{**model_kw, **{k: v for k, v in model_overrides.items() if v is not None}})
+    return mcfg, TrainConfig(**train_kw)
+
+
 def default_model_config(scene: Scene, **overrides) -> ModelConfig:
     """Latent dimension = number of parameters + one per periodic parameter, unless overridden."""
     kw = dict(resolution=scene.resolution, channels=scene.channels,
@@ -194,6 +213,10 @@ def _step(model: Autoencoder, opt: torch.optim.Optimizer, x_all: torch.Tensor, f
     loss_rec = losses.reconstruction(x_hat, x)
     loss = loss_rec
     logs = {"rec": float(loss_rec.detach())}
+    if cfg.w_ssim:
+        loss_ssim = 1.0 - losses.ssim(x_hat, x)
+        loss = loss + cfg.w_ssim * loss_ssim
+        logs["ssim"] = float(loss_ssim.detach())
     if k:
         a_t = torch.from_numpy(a.astype(np.float32))
         loss_col = losses.collinearity(z[ps], z[pm], z[pt], a_t)

@@ -80,4 +80,4 @@ def test_engine_refinement_on_the_lamp_scene_stays_within_a_small_tolerance(smal
         decoded = on.decode(ans.codes)
         assert all(f.detail is not None for f in ans.frames)
         worst = min(worst, float(np.min(psnr_batch(refined, truth) - psnr_batch(decoded, truth))))
-    assert worst > -1.0, worst
+    assert worst > -0.3, worst

@@ -87,3 +87,40 @@ def test_broken_bundles_are_refused(tmp_path):
     (tmp_path / "manifest.json").write_text('{"format": "something-else"}')
     with pytest.raises(BundleError, match="format"):
         load_bundle(tmp_path)
+
+
+def test_ssim_loss_equals_scikit_image():
+    # scikit-image's structural_similarity with Gaussian weights (sigma 1.5) and population
+    # statistics is the reference the training term must match (Wang et al. 2004)
+    from skimage.metrics import structural_similarity
+
+    from models.losses import ssim
+
+    rng = np.random.default_rng(3)
+    a = rng.random((3, 3, 24, 24)).astype(np.float32)
+    b = np.clip(a + 0.15 * rng.standard_normal(a.shape), 0, 1).astype(np.float32)
+    got = float(ssim(torch.from_numpy(a), torch.from_numpy(b)))
+    want = np.mean([structural_similarity(x.transpose(1, 2, 0), y.transpose(1, 2, 0), gaussian_weights=True,
+                                          use_sample_covariance=False, data_range=1.0, channel_axis=2)
+                    for x, y in zip(a, b)])
+    assert got == pytest.approx(want, abs=1e-5)
+    assert float(ssim(torch.from_numpy(a), torch.from_numpy(a))) == pytest.approx(1.0, abs=1e-6)
+
+
+def test_presets_set_their_configs_and_refuse_unknown_names(tiny_scene):
+    from models.train import PRESETS, preset_configs
+
+    m, t = preset_configs(tiny_scene, "default")
+    assert (m, t) == (default_model_config(tiny_scene), TrainConfig())
+    m, t = preset_configs(tiny_scene, "quality")
+    model_kw, train_kw = PRESETS["quality"]
+    assert m.latent_dim == model_kw["latent_dim"] and t.steps == train_kw["steps"] and t.w_ssim > 0
+    assert preset_configs(tiny_scene, "quality", latent_dim=5)[0].latent_dim == 5  # explicit wins
+    with pytest.raises(ValueError, match="preset"):
+        preset_configs(tiny_scene, "best")
+
+
+def test_ssim_term_trains(tiny_scene):
+    res = train(tiny_scene, train_config=TrainConfig(steps=12, w_ssim=0.5, batch_triplets=4, extra_images=4),
+                progress=None)
+    assert np.isfinite(res.metrics["train_psnr"])
