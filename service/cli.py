@@ -75,7 +75,26 @@ def cmd_train(args) -> int:
     return EXIT_OK
 
 
+def refine_line(manifest: dict) -> str:
+    """Whether a model refines its frames with detail from real training images, and the held-out
+    in-betweens behind that choice (decoded -> refined), from its bundle manifest."""
+    chosen = manifest.get("refine")
+    if not isinstance(chosen, dict) or not chosen:
+        return "detail transfer off (no choice made at training time)"
+    text = "detail transfer " + ("on" if chosen.get("on") else "off")
+    held = chosen.get("holdout") or {}
+    dec, ref = held.get("decoded"), held.get("refined")
+    if dec and ref:
+        text += (f"; held-out in-betweens PSNR {dec['psnr']:.2f} -> {ref['psnr']:.2f} dB, "
+                 f"SSIM {dec['ssim']:.4f} -> {ref['ssim']:.4f} when refined")
+        if ref.get("detail") is not None:
+            text += f", {100 * ref['detail']:.0f} % of pixels from real images"
+    return text
+
+
 def cmd_models(args) -> int:
+    from models.bundle import read_manifest
+
     reg = _registry(args)
     rows = reg.list_models()
     if not rows:
@@ -86,6 +105,7 @@ def cmd_models(args) -> int:
         print(f"{row.name}@{latest.version}  versions {row.n_versions}  created {latest.created}  "
               f"holdout PSNR {m.get('holdout_psnr', float('nan')):.2f} dB  "
               f"SSIM {m.get('holdout_ssim', float('nan')):.4f}")
+        print(f"  {refine_line(read_manifest(latest.path))}")
     return EXIT_OK
 
 
@@ -154,7 +174,7 @@ def cmd_between(args) -> int:
         if name:
             save_png(f.image, out / name)
         frames.append({"index": f.index, "t": round(f.t, 6), "confidence": f.confidence, "accepted": f.accepted,
-                       "params": f.params, "image": name})
+                       "params": f.params, "detail": f.detail, "image": name})
     from models.latent_map import engine_map_png
 
     engine_map_png(engine, [answer], out / LATENT_MAP,

@@ -2,7 +2,8 @@
 
 `fill NAME TARGETS.csv --out DIR` answers one frame per CSV row (header = parameter names) with
 the local engine from the registry, or with a running service when --url is given; it writes the
-accepted frames as PNG plus report.csv and report.json (confidence per target). Exit 2 on bad input.
+accepted frames as PNG plus report.csv and report.json (confidence and detail share per target).
+Exit 2 on bad input.
 """
 from __future__ import annotations
 
@@ -117,7 +118,8 @@ def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable
     for lo in range(0, len(targets), chunk):
         for k, f in enumerate(engine.fill(targets[lo:lo + chunk], min_confidence=args.min_confidence)):
             frames.append({"index": lo + k + 1, "target": dict(targets[lo + k]), "png": encode_png(f.image),
-                           "confidence": f.confidence, "accepted": f.accepted, "params": f.params})
+                           "confidence": f.confidence, "accepted": f.accepted, "params": f.params,
+                           "detail": f.detail})
         progress(len(frames), len(targets))
     return {"model": entry.name, "version": entry.version, "frames": frames}
 
@@ -133,7 +135,8 @@ def _fill_remote(args, targets: Sequence[Mapping[str, float]], progress: Callabl
         buf = io.BytesIO()
         f.pil().save(buf, format="PNG")
         frames.append({"index": f.index, "target": f.target or dict(targets[f.index - 1]), "png": buf.getvalue(),
-                       "confidence": f.confidence, "accepted": f.accepted, "params": f.params})
+                       "confidence": f.confidence, "accepted": f.accepted, "params": f.params,
+                       "detail": f.detail})
     return {"model": result.model, "version": result.version, "frames": frames}
 
 
@@ -145,18 +148,20 @@ def _write_fill(out: Path, names: Sequence[str], answer: dict) -> dict:
         if file:
             (out / file).write_bytes(f["png"])
         rows.append({"index": f["index"], "target": f["target"], "confidence": f["confidence"],
-                     "accepted": f["accepted"], "file": file, "params": f["params"]})
+                     "accepted": f["accepted"], "file": file, "params": f["params"], "detail": f["detail"]})
     accepted = sum(r["accepted"] for r in rows)
     report = {"model": answer["model"], "version": answer["version"], "targets": len(rows), "accepted": accepted,
               "rejected": len(rows) - accepted, "synthesized": True, "notice": NOTICE, "frames": rows}
     (out / "report.json").write_text(json.dumps(report, indent=1))
     with open(out / "report.csv", "w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh)
-        w.writerow(["index", *names, "confidence", "accepted", "file", *[f"shown_{n}" for n in names]])
+        # detail last, so the columns before it keep their places; empty when the model does not refine
+        w.writerow(["index", *names, "confidence", "accepted", "file", *[f"shown_{n}" for n in names], "detail"])
         for r in rows:
             conf = "" if r["confidence"] is None else f"{r['confidence']:.6f}"
+            detail = "" if r["detail"] is None else f"{r['detail']:.6f}"
             w.writerow([r["index"], *[r["target"].get(n, "") for n in names], conf, int(r["accepted"]),
-                        r["file"] or "", *[f"{r['params'].get(n, float('nan')):.6g}" for n in names]])
+                        r["file"] or "", *[f"{r['params'].get(n, float('nan')):.6g}" for n in names], detail])
     return report
 
 

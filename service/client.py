@@ -48,6 +48,9 @@ class Frame:
     params: dict[str, float]
     t: float | None = None                    # between frames: fraction of the route's length
     target: dict[str, float] | None = None    # fill frames: the settings asked for
+    # share of pixels, [0, 1], carried over from real training images by detail transfer (moved by an
+    # estimated optical flow; the frame is still synthesized); None when the model does not refine
+    detail: float | None = None
 
     def pil(self) -> Image.Image:
         arr = np.round(np.clip(self.image, 0.0, 1.0) * 255.0).astype(np.uint8)
@@ -121,10 +124,18 @@ class ModelDetail:
     channels: int
     metrics: dict
     calibration: dict
+    # detail transfer: {"on", "chosen", "config", "holdout": {"decoded": {psnr, ssim}, "refined": {psnr,
+    # ssim, detail}} | None}; empty from a server that does not report it
+    refine: dict = field(default_factory=dict)
 
     @property
     def parameter_names(self) -> list[str]:
         return [p["name"] for p in self.parameters]
+
+    @property
+    def refines(self) -> bool:
+        """True when this model's frames are refined with detail from real training images."""
+        return bool(self.refine.get("on", False))
 
 
 def _known(cls, d: Mapping) -> dict:
@@ -147,7 +158,8 @@ def _decode_png(text: str) -> np.ndarray:
 def _frames(items: Sequence[Mapping]) -> list[Frame]:
     return [Frame(index=int(f["index"]), image=_decode_png(f["image"]), confidence=f.get("confidence"),
                   accepted=bool(f["accepted"]), params=dict(f.get("params") or {}), t=f.get("t"),
-                  target=f.get("target")) for f in items]
+                  target=f.get("target"), detail=None if f.get("detail") is None else float(f["detail"]))
+            for f in items]
 
 
 def _png_of_array(arr: np.ndarray) -> bytes:
@@ -239,7 +251,9 @@ class Client:
 
     def model(self, name: str, version: int | None = None) -> ModelDetail:
         params = {"version": version} if version is not None else None
-        return ModelDetail(**_known(ModelDetail, self._json("GET", f"/v1/models/{_seg(name)}", params=params)))
+        d = _known(ModelDetail, self._json("GET", f"/v1/models/{_seg(name)}", params=params))
+        d["refine"] = dict(d.get("refine") or {})
+        return ModelDetail(**d)
 
     def delete(self, name: str, version: int) -> None:
         self._json("DELETE", f"/v1/models/{_seg(name)}/{_seg(version)}")

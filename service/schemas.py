@@ -11,6 +11,10 @@ from typing import Literal
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 NOTICE = "frames are synthesized by a learned model, not captured"
+DETAIL = ("share of the frame's pixels, 0 to 1, carried over from real training images by detail transfer: "
+          "the nearest captured images are moved onto the frame along an estimated optical flow and kept only "
+          "where they agree with the decoded frame. The frame is still synthesized, not captured. null when the "
+          "model does not refine (chosen per model at training time)")
 ROUTES = ("geodesic", "straight")
 JOB_STATES = ("queued", "running", "done", "failed", "cancelled")
 RESOLUTIONS = (16, 32, 64, 128, 256)
@@ -69,6 +73,7 @@ class BetweenRequest(_Request):
 
 
 class FrameOut(_Out):
+    """One synthesized frame: decoded from a latent code, refined by detail transfer when the model refines."""
     index: int = Field(description="1-based position on the route")
     t: float = Field(description="fraction of the route's length, i / (frames + 1)")
     image: str = Field(description="base64 PNG at the model's resolution")
@@ -78,6 +83,7 @@ class FrameOut(_Out):
     params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
     code: list[float] | None = Field(None, description="the frame's latent code (place it on the latent map "
                                                        "with POST /v1/models/{name}/map)")
+    detail: float | None = Field(ge=0.0, le=1.0, description=DETAIL)
 
 
 class BetweenOut(_Out):
@@ -114,6 +120,7 @@ class FillFrameOut(_Out):
     confidence: float | None
     accepted: bool
     params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
+    detail: float | None = Field(ge=0.0, le=1.0, description=DETAIL)
 
 
 class FillOut(_Out):
@@ -238,6 +245,37 @@ class CalibrationOut(_Out):
     status: str | None
 
 
+class ScoreOut(_Out):
+    psnr: float | None = Field(description="mean PSNR against the held-out captures, dB")
+    ssim: float | None = Field(description="mean SSIM against the held-out captures")
+
+
+class RefinedScoreOut(ScoreOut):
+    detail: float | None = Field(description="mean share of pixels carried over from real training images")
+
+
+class RefineHoldoutOut(_Out):
+    """Geodesic in-betweens whose truth is a held-out capture, scored both ways at training time."""
+    decoded: ScoreOut = Field(description="the frames as decoded")
+    refined: RefinedScoreOut = Field(description="the same frames after detail transfer")
+
+
+class RefineOut(_Out):
+    """Detail transfer: whether this model's frames take texture from its nearest training images
+    (moved by an estimated optical flow, kept only where they agree with the decoded frame). Refined
+    frames are still synthesized, not captured."""
+    on: bool = Field(description="true: frames are refined and each carries a numeric `detail`; false: frames "
+                                 "are decoded only and `detail` is null")
+    chosen: bool = Field(description="true: the choice was made at training time on the held-out share (on only "
+                                     "where refining won); false: the model was trained without one and never "
+                                     "refines")
+    config: dict | None = Field(description="the detail transfer settings chosen, used when on (neighbours: images "
+                                            "warped per frame; match, spread: blur sigmas in px; tolerance: "
+                                            "disagreement in [0, 1] intensity at which trust falls to 1/e)")
+    holdout: RefineHoldoutOut | None = Field(description="held-out figures behind the choice; null when there "
+                                                         "were none")
+
+
 class ModelOut(_Out):
     name: str
     latest_version: int
@@ -248,6 +286,7 @@ class ModelOut(_Out):
     channels: int
     metrics: dict
     calibration: CalibrationOut
+    refine: RefineOut
 
 
 class DeletedOut(_Out):

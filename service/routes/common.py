@@ -55,6 +55,7 @@ class FrameData:
     params: dict[str, float]
     target: dict[str, float] | None = None
     code: list[float] | None = None   # between frames: the latent code the frame was decoded from
+    detail: float | None = None       # share of pixels from real bank images (None: the model does not refine)
 
 
 @dataclass
@@ -80,7 +81,8 @@ def frame_data(frames: Sequence, targets: Sequence[dict] | None = None, *, offse
                              confidence=None if f.confidence is None else float(f.confidence),
                              accepted=bool(f.accepted), params={n: float(v) for n, v in f.params.items()},
                              target=None if targets is None else dict(targets[k]),
-                             code=None if codes is None else [float(c) for c in codes[k]]))
+                             code=None if codes is None else [float(c) for c in codes[k]],
+                             detail=None if f.detail is None else float(f.detail)))
     return out
 
 
@@ -90,7 +92,8 @@ def _frame_json(f: FrameData, kind: str, image: dict) -> dict:
         base["t"] = f.t
     else:
         base["target"] = f.target
-    body = {**base, **image, "confidence": f.confidence, "accepted": f.accepted, "params": f.params}
+    body = {**base, **image, "confidence": f.confidence, "accepted": f.accepted, "params": f.params,
+            "detail": f.detail}
     if f.code is not None:
         body["code"] = f.code
     return body

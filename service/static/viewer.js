@@ -189,6 +189,7 @@
     const c = detail.calibration;
     add(main, "confidence", c.fitted ? "calibrated (" + (c.method || "?") + "), tau " + fmt(c.tau, 2) : "not calibrated");
     if (c.fitted) add(main, "ECE / AUROC", fmt(c.ece, 3) + " / " + fmt(c.auroc, 3));
+    add(main, "detail transfer", refineText(detail.refine));
     for (const [k, v] of Object.entries(m)) {
       if (typeof v === "number" && k !== "holdout_psnr" && k !== "holdout_ssim") {
         add(more, k.replace(/_/g, " "), Number.isInteger(v) ? String(v) : fmt(v, 3));
@@ -199,6 +200,17 @@
     const fold = el("details", { class: "more" });
     fold.append(el("summary", {}, "More metrics"), more);
     box.append(fold);
+  }
+
+  // Whether frames take detail from real training images, with the held-out figures behind the choice.
+  function refineText(r) {
+    if (!r || !r.chosen) return "off (not chosen at training)";
+    let text = r.on ? "on" : "off";
+    const h = r.holdout;
+    if (h) {
+      text += "; held-out PSNR " + fmt(h.decoded.psnr, 2) + " dB decoded, " + fmt(h.refined.psnr, 2) + " dB refined";
+    }
+    return text;
   }
 
   // -- ends --------------------------------------------------------------------------------
@@ -371,6 +383,12 @@
       : "confidence " + (Math.floor(f.confidence * 100 + 1e-9) / 100).toFixed(2);
   }
 
+  // The share of the frame's pixels carried over from real training images by detail transfer
+  // (moved by an estimated optical flow; the frame is still synthesized); "" when the model does not refine.
+  function detailText(f) {
+    return f.detail === null || f.detail === undefined ? "" : "detail " + Math.round(f.detail * 100) + " %";
+  }
+
   function showStrip(answer) {
     const strip = $("strip");
     strip.replaceChildren();
@@ -379,12 +397,17 @@
       const item = el("li", { class: "frame " + (f.accepted ? "ok" : "rejected"), "data-index": String(f.index) });
       const button = el("button", { type: "button", class: "thumb",
         "aria-label": "frame " + f.index + ", t " + fmt(f.t, 2) + ", " + confidenceText(f) + ", " +
+          (detailText(f) ? detailText(f) + " from real images, " : "") +
           (f.accepted ? "accepted" : "rejected") + "; show in playback" });
       const img = el("img", { src: "data:image/png;base64," + f.image, alt: "" });
       button.append(img);
       if (!f.accepted) button.append(el("span", { class: "hatch", "aria-hidden": "true" }));
       button.addEventListener("click", () => { stopPlayback(); show(i); });
       const caption = el("div", { class: "caption" }, "#" + f.index + "  t " + fmt(f.t, 2));
+      if (detailText(f)) {
+        caption.append(el("span", { class: "detail", title: "share of this frame's pixels carried over from real " +
+          "training images (detail transfer); the frame is still synthesized, not captured" }, detailText(f)));
+      }
       const bar = el("div", { class: "bar", "aria-hidden": "true" });
       const fill = el("span", { class: "fill" });
       fill.style.width = (f.confidence === null ? 0 : Math.round(100 * f.confidence)) + "%";
@@ -426,7 +449,7 @@
     $("screen").classList.remove("empty");
     $("screen-mark").hidden = f.accepted;
     $("screen-label").textContent = "frame " + f.index + " of " + frames.length + ", t " + fmt(f.t, 2) + ", " +
-      confidenceText(f) + ", " + (f.accepted ? "accepted" : "REJECTED");
+      confidenceText(f) + (detailText(f) ? ", " + detailText(f) : "") + ", " + (f.accepted ? "accepted" : "REJECTED");
     $("screen-shows").textContent = "shows " + describeParams(f.params);
     for (const item of $("strip").children) {
       item.classList.toggle("current", Number(item.dataset.index) === f.index);

@@ -139,6 +139,8 @@ def test_list_and_describe_models(client, registry):
     assert d["parameters"][0]["periodic"] is True and d["resolution"] == 16 and d["channels"] == 1
     assert d["metrics"] == registry.get("tile").metrics
     assert d["calibration"]["fitted"] is False
+    # trained without a detail-transfer choice: it never refines
+    assert d["refine"] == {"on": False, "chosen": False, "config": None, "holdout": None}
     cal = client.get("/v1/models/tile-cal").json()["calibration"]
     assert cal["fitted"] is True and cal["tau"] == 0.9 and cal["signals"] == list(SIGNALS)
     assert cal["method"] in ("platt", "isotonic")
@@ -154,6 +156,7 @@ def test_between_serves_the_engines_frames(client, registry):
     assert [f["t"] for f in d["frames"]] == pytest.approx([i / 6 for i in range(1, 6)])  # DESIGN: t = i/(n+1)
     # uncalibrated model: confidence null and every frame accepted
     assert all(f["confidence"] is None and f["accepted"] for f in d["frames"])
+    assert all("detail" in f and f["detail"] is None for f in d["frames"])  # the model does not refine
     assert (d["accepted"], d["rejected"]) == (5, 0)
     engine = Engine.load(registry.get("tile").path)
     want = engine.between(Endpoint(params=P(10, 30)), Endpoint(params=P(100, 60)), frames=5, route="straight")
@@ -437,6 +440,12 @@ def test_openapi_ids_examples_errors_and_media_types(client):
                 assert resp["content"]["application/json"]["schema"]["$ref"].endswith("/ErrorOut"), (op_id, status)
     assert "application/zip" in ops["between"]["responses"]["200"]["content"]
     assert "202" in ops["fill"]["responses"]
+    schemas = spec["components"]["schemas"]
+    for frame in ("FrameOut", "FillFrameOut"):  # the detail share is documented, and says what it is not
+        text = schemas[frame]["properties"]["detail"]["description"]
+        assert "real training images" in text and "optical flow" in text and "not captured" in text
+        assert "detail" in schemas[frame]["required"]
+    assert "refine" in schemas["ModelOut"]["required"] and "not captured" in schemas["RefineOut"]["description"]
     assert "401" in ops["start_training"]["responses"] and "401" in ops["delete_model_version"]["responses"]
 
 
@@ -478,3 +487,89 @@ def test_an_unexpected_error_is_a_500_in_the_error_shape(registry, caplog):
         assert c.get("/healthz").status_code == 200
         assert metric(c, "geotween_requests_total", route="/boom", status="500") == 1
     assert any("secret detail" in (rec.exc_text or "") for rec in caplog.records)
+
+
+# -- detail transfer ----------------------------------------------------------------------------
+def with_refine(src: Path, folder: Path, *, on: bool) -> dict:
+    """Copy a bundle with its detail-transfer choice made on its own held-out share
+    (models.calibrate.choose_refine), then `on` forced either way; returns the manifest entry."""
+    from models.calibrate import choose_refine
+
+    shutil.copytree(src, folder, dirs_exist_ok=True)
+    engine = Engine.load(src, refine=False)
+    holdout = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
+    entry = choose_refine(engine, engine.bundle.arrays["holdout_params"], holdout)
+    entry["on"] = on
+    manifest = json.loads((folder / "manifest.json").read_text())
+    manifest["refine"] = entry
+    (folder / "manifest.json").write_text(json.dumps(manifest))
+    return entry
+
+
+@pytest.fixture(scope="module")
+def refine_registry(tmp_path_factory, service_bundle):
+    reg = Registry.open(tmp_path_factory.mktemp("refine-registry"))
+    reg.publish("tile", lambda f: shutil.copytree(service_bundle, f, dirs_exist_ok=True))
+    entries = {}
+    for name, on in (("tile-off", False), ("tile-fine", True)):
+        reg.publish(name, lambda f, on=on, name=name: entries.update({name: with_refine(service_bundle, f, on=on)}))
+    return reg, entries
+
+
+@pytest.fixture(scope="module")
+def refine_client(refine_registry):
+    app = create_app(Settings(registry=refine_registry[0].root, **LIMITS))
+    with TestClient(app) as c:
+        yield c
+
+
+def test_describe_shows_whether_a_model_refines_and_its_held_out_figures(refine_client, refine_registry):
+    _, entries = refine_registry
+    none = refine_client.get("/v1/models/tile").json()["refine"]
+    assert none == {"on": False, "chosen": False, "config": None, "holdout": None}
+    for name, on in (("tile-off", False), ("tile-fine", True)):
+        got = refine_client.get(f"/v1/models/{name}").json()["refine"]
+        want = entries[name]
+        assert (got["on"], got["chosen"]) == (on, True) and got["config"] == want["config"]
+        dec, ref = want["holdout"]["decoded"], want["holdout"]["refined"]
+        assert got["holdout"] == {"decoded": {"psnr": dec["psnr"], "ssim": dec["ssim"]},
+                                  "refined": {"psnr": ref["psnr"], "ssim": ref["ssim"], "detail": ref["detail"]}}
+
+
+def test_a_refining_model_gives_every_frame_its_detail_share(refine_client, refine_registry):
+    reg, _ = refine_registry
+    body = between_body(frames=4, route="straight")
+    d = refine_client.post("/v1/models/tile-fine/between", json=body).json()
+    shares = [f["detail"] for f in d["frames"]]
+    assert len(shares) == 4 and all(isinstance(v, float) and 0.0 <= v <= 1.0 for v in shares), shares
+    path = reg.get("tile-fine").path
+    ends = Endpoint(params=body["start"]["params"]), Endpoint(params=body["end"]["params"])
+    served = Engine.load(path).between(*ends, frames=4, route="straight")            # as the bundle chose
+    decoded = Engine.load(path, refine=False).between(*ends, frames=4, route="straight")
+    assert shares == pytest.approx([f.detail for f in served.frames], abs=1e-9)
+    for got, ref, plain in zip(d["frames"], served.frames, decoded.frames):
+        img = decode_frame(got["image"]).astype(int)
+        assert np.abs(img - np.round(ref.image[..., 0] * 255)).max() <= 1  # the refined image is what is sent
+        if got["detail"] > 0.01:  # real pixels were carried over: the frame is not the decoded one
+            assert np.abs(img - np.round(plain.image[..., 0] * 255)).max() > 1
+    assert any(v > 0.01 for v in shares), shares  # else the comparison above checked nothing
+
+    # the ZIP's manifest carries the same shares; fill frames carry theirs
+    r = refine_client.post("/v1/models/tile-fine/between", json=body, headers={"Accept": "application/zip"})
+    with zipfile.ZipFile(io.BytesIO(r.content)) as zf:
+        assert [f["detail"] for f in json.loads(zf.read("manifest.json"))["frames"]] == shares
+    fill = refine_client.post("/v1/models/tile-fine/fill", json={"targets": [P(0, 20), P(95, 50)]}).json()
+    want = Engine.load(path).fill([P(0, 20), P(95, 50)])
+    assert [f["detail"] for f in fill["frames"]] == pytest.approx([f.detail for f in want], abs=1e-9)
+
+
+@pytest.mark.parametrize("name", ["tile", "tile-off"])
+def test_a_model_that_does_not_refine_gives_null_detail(refine_client, name):
+    d = refine_client.post(f"/v1/models/{name}/between", json=between_body(frames=3)).json()
+    assert [f["detail"] for f in d["frames"]] == [None, None, None]
+    fill = refine_client.post(f"/v1/models/{name}/fill", json={"targets": [P(0, 20)]}).json()
+    assert fill["frames"][0]["detail"] is None
+    r = refine_client.post(f"/v1/models/{name}/between", json=between_body(frames=2),
+                           headers={"Accept": "application/zip"})
+    with zipfile.ZipFile(io.BytesIO(r.content)) as zf:
+        assert [f["detail"] for f in json.loads(zf.read("manifest.json"))["frames"]] == [None, None]

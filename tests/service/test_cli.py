@@ -125,3 +125,98 @@ def test_between_refuses_unreadable_and_wrong_channel_images(small_registry, tmp
         assert not out.exists()
     assert main(["--registry", small_registry, "between", "small", "lamp_azimuth=0,lamp_elevation=40",
                  "lamp_azimuth=10,lamp_elevation=40", "--frames", "0", "--out", str(tmp_path / "o")]) == 2
+
+
+# -- detail transfer in the manifests and the listing ------------------------------------------------
+@pytest.fixture(scope="module")
+def detail_registry(service_bundle, tmp_path_factory):
+    """The tiny bundle three ways: no refine choice, refining off, refining forced on (the held-out
+    figures are its own, from models.calibrate.choose_refine)."""
+    import shutil
+
+    from service.registry import Registry
+    from test_api import with_refine
+
+    root = tmp_path_factory.mktemp("detail-reg")
+    reg = Registry.open(root)
+    reg.publish("bare", lambda f: shutil.copytree(service_bundle, f, dirs_exist_ok=True))
+    entries = {}
+    for name, on in (("plain", False), ("fine", True)):
+        reg.publish(name, lambda f, on=on, name=name: entries.update({name: with_refine(service_bundle, f, on=on)}))
+    return str(root), reg, entries
+
+
+BETWEEN = ["lamp_azimuth=10,lamp_elevation=30", "lamp_azimuth=100,lamp_elevation=60"]
+
+
+def test_between_manifest_carries_each_frames_detail(detail_registry, tmp_path):
+    from models.engine import Endpoint, Engine
+
+    root, reg, _ = detail_registry
+    for name in ("fine", "plain", "bare"):
+        out = tmp_path / name
+        assert main(["--registry", root, "between", name, *BETWEEN, "--frames", "3", "--out", str(out)]) == 0
+        frames = json.loads((out / "manifest.json").read_text())["frames"]
+        ends = [Endpoint(params={k: float(v) for k, v in (p.split("=") for p in e.split(","))}) for e in BETWEEN]
+        want = [f.detail for f in Engine.load(reg.get(name).path).between(*ends, frames=3).frames]
+        if name == "fine":
+            assert all(isinstance(f["detail"], float) and 0.0 <= f["detail"] <= 1.0 for f in frames), frames
+            assert [f["detail"] for f in frames] == pytest.approx(want, abs=1e-9)
+        else:
+            assert [f["detail"] for f in frames] == want == [None, None, None]
+
+
+def test_models_says_whether_each_model_refines(detail_registry, capsys):
+    root, _, entries = detail_registry
+    assert main(["--registry", root, "models"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    said = {lines[i].split("@")[0]: lines[i + 1].strip() for i in range(0, len(lines), 2)}
+    assert said["bare"] == "detail transfer off (no choice made at training time)"
+    for name, state in (("plain", "off"), ("fine", "on")):
+        dec, ref = entries[name]["holdout"]["decoded"], entries[name]["holdout"]["refined"]
+        assert said[name].startswith(f"detail transfer {state}; "), said[name]
+        assert f"PSNR {dec['psnr']:.2f} -> {ref['psnr']:.2f} dB" in said[name]
+        assert f"SSIM {dec['ssim']:.4f} -> {ref['ssim']:.4f}" in said[name]
+
+
+def test_fill_reports_detail_locally_and_through_the_service(detail_registry, tmp_path, monkeypatch):
+    """The remote path runs against the real app: the client's transport hands each request to
+    FastAPI's TestClient, so no server is started."""
+    import csv
+
+    import httpx
+    from fastapi.testclient import TestClient
+
+    from service import client as client_module
+    from service.api import create_app
+    from service.settings import Settings
+
+    root, _, _ = detail_registry
+    targets = tmp_path / "targets.csv"
+    targets.write_text("lamp_azimuth,lamp_elevation\n0,20\n95,50\n")
+    with TestClient(create_app(Settings(registry=root))) as app:
+        def forward(request: httpx.Request) -> httpx.Response:
+            r = app.request(request.method, request.url.raw_path.decode(), content=request.content,
+                            headers={k: v for k, v in request.headers.items() if k.lower() != "host"})
+            return httpx.Response(r.status_code, content=r.content, headers=r.headers)
+
+        real = client_module.Client
+        monkeypatch.setattr(client_module, "Client",
+                            lambda url, **kw: real(url, transport=httpx.MockTransport(forward), **kw))
+        got = {}
+        for name in ("fine", "plain"):
+            for where, extra in (("local", []), ("remote", ["--url", "http://geotween.test"])):
+                out = tmp_path / f"{name}-{where}"
+                assert main(["--registry", root, "fill", name, str(targets), "--out", str(out), *extra]) == 0
+                report = [f["detail"] for f in json.loads((out / "report.json").read_text())["frames"]]
+                with open(out / "report.csv", newline="") as fh:
+                    rows = list(csv.DictReader(fh))
+                column = [None if r["detail"] == "" else float(r["detail"]) for r in rows]
+                if name == "fine":
+                    assert column == pytest.approx(report, abs=1e-6)  # the CSV rounds to 6 places
+                else:
+                    assert column == report
+                got[name, where] = report
+    assert all(isinstance(v, float) and 0.0 <= v <= 1.0 for v in got["fine", "local"])
+    assert got["fine", "remote"] == pytest.approx(got["fine", "local"], abs=1e-9)
+    assert got["plain", "local"] == got["plain", "remote"] == [None, None]

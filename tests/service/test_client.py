@@ -19,11 +19,17 @@ def png_b64(arr: np.ndarray) -> str:
 
 
 GRAY = (np.arange(64, dtype=np.uint8).reshape(8, 8) * 4)
+MODEL = {"name": "tile", "latest_version": 2, "version": 2, "versions": [], "parameters": [], "resolution": 16,
+         "channels": 1, "metrics": {}, "calibration": {"fitted": False}}
+REFINE = {"on": True, "chosen": True, "config": {"neighbours": 2, "tolerance": 0.05},
+          "holdout": {"decoded": {"psnr": 21.5, "ssim": 0.71}, "refined": {"psnr": 22.25, "ssim": 0.74, "detail": 0.6}}}
 
 
 def frame_json(i, **kw):
+    # odd frames carry a detail share, even ones null, as a refining and a plain model would send
     return {"index": i, "image": png_b64(GRAY), "confidence": 0.8, "accepted": True,
-            "params": {"lamp_azimuth": 10.0 * i, "lamp_elevation": 40.0}, **kw}
+            "params": {"lamp_azimuth": 10.0 * i, "lamp_elevation": 40.0}, "detail": 0.125 * i if i % 2 else None,
+            **kw}
 
 
 class FakeService:
@@ -39,6 +45,10 @@ class FakeService:
         if path == "/v1/models":
             return httpx.Response(200, json={"models": [{"name": "tile", "latest_version": 2, "versions": 2,
                                                          "latest_created": "2026-01-01T00:00:00.000Z"}]})
+        if path == "/v1/models/tile":
+            return httpx.Response(200, json={**MODEL, "refine": REFINE})
+        if path == "/v1/models/old":  # a server from before detail transfer sends no refine block
+            return httpx.Response(200, json={**MODEL, "name": "old"})
         if path.endswith("/between"):
             body = json.loads(request.content)
             n = body["frames"]
@@ -113,6 +123,14 @@ def test_between_encodes_every_kind_of_end(client, fake, tmp_path):
         assert np.allclose(f.image[..., 0], GRAY / 255.0)
         assert np.array_equal(np.asarray(f.pil()), GRAY)
         assert (f.confidence, f.accepted, f.params["lamp_azimuth"]) == (0.8, True, 10.0)
+        assert [g.detail for g in result.frames] == [0.125, None, 0.375]
+
+
+def test_model_exposes_the_refine_choice(client):
+    tile = client.model("tile")
+    assert tile.refine == REFINE and tile.refines is True
+    old = client.model("old")
+    assert old.refine == {} and old.refines is False
 
 
 def test_fill_at_once_and_as_a_polled_job(client, fake):
@@ -124,6 +142,7 @@ def test_fill_at_once_and_as_a_polled_job(client, fake):
     assert big.job_id == "a" * 32 and len(big.frames) == 3 and big.frames[2].target == {"lamp_azimuth": 1.0,
                                                                                          "lamp_elevation": 30.0}
     assert seen[-1] == (3, 3) and [d for d, _ in seen] == sorted(d for d, _ in seen)
+    assert [f.detail for f in big.frames] == [0.125, None, 0.375] and small.frames[0].detail == 0.125
     assert client.cancel("a" * 32).state == "cancelled"
 
 

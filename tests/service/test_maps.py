@@ -85,7 +85,9 @@ def test_between_codes_land_on_the_map_where_the_engine_puts_them(client, engine
 
 def test_fill_answers_are_unchanged(client):
     frame = client.post("/v1/models/tile/fill", json={"targets": [P(0, 20)]}).json()["frames"][0]
-    assert set(frame) == {"index", "target", "image", "confidence", "accepted", "params"}
+    # no latent code on fill frames; detail (null here: the model does not refine) is the one addition
+    assert set(frame) == {"index", "target", "image", "confidence", "accepted", "params", "detail"}
+    assert frame["detail"] is None
 
 
 @pytest.mark.parametrize("body, status, code, field", [

@@ -177,6 +177,7 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
         expect(page.locator("#model-info table tbody tr")).to_have_count(2)
         expect(page.locator("#model-info")).to_contain_text("held-out PSNR")
         expect(page.locator("#model-info")).to_contain_text("calibrated")
+        expect(page.locator("#model-info")).to_contain_text("detail transfer")
         bank = httpx.get(live["url"] + "/v1/models/relief-tile/map", timeout=30).json()["bank"]
         expect(page.locator("#map .bank-point")).to_have_count(len(bank))
 
@@ -213,6 +214,12 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
         for i, conf in enumerate(confidences):
             expect(strip.nth(i).locator(".conf")).to_have_text(_shown(conf))
             expect(strip.nth(i).locator(".verdict")).to_have_text("accepted")
+        for i, f in enumerate(answer["frames"]):  # the detail share, only where the model refines
+            mark = strip.nth(i).locator(".caption .detail")
+            if f["detail"] is None:
+                expect(mark).to_have_count(0)
+            else:
+                expect(mark).to_have_text(f"detail {math.floor(f['detail'] * 100 + 0.5)} %")  # as Math.round
         expect(page.locator("#map .route-frame")).to_have_count(6)
         expect(page.locator("#map .route-end")).to_have_count(2)
 
