@@ -266,7 +266,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--steps", type=int, default=None)
     s.add_argument("--budget-seconds", type=float, default=None, help="wall-clock cap on training")
     s.add_argument("--quality", action="store_true",
-                   help="the quality preset: longer training, a wider latent and an SSIM term (see bench/RESULTS.md)")
+                   help="the quality preset: a wider latent and an SSIM term (see bench/RESULTS.md)")
     s.add_argument("--seed", type=int, default=0)
     s.set_defaults(func=cmd_train)
 

@@ -114,7 +114,7 @@ def test_presets_set_their_configs_and_refuse_unknown_names(tiny_scene):
     assert (m, t) == (default_model_config(tiny_scene), TrainConfig())
     m, t = preset_configs(tiny_scene, "quality")
     model_kw, train_kw = PRESETS["quality"]
-    assert m.latent_dim == model_kw["latent_dim"] and t.steps == train_kw["steps"] and t.w_ssim > 0
+    assert m.latent_dim == model_kw["latent_dim"] and t.w_ssim == train_kw["w_ssim"] > 0
     assert preset_configs(tiny_scene, "quality", latent_dim=5)[0].latent_dim == 5  # explicit wins
     with pytest.raises(ValueError, match="preset"):
         preset_configs(tiny_scene, "best")
