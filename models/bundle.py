@@ -81,6 +81,43 @@ class Bundle:
         with np.load(self.path / BANK, allow_pickle=False) as z:
             return z[which]
 
+    def mapped_pixels(self, which: str = "images") -> np.ndarray:
+        """Like `pixels`, but for a bundle on disk a read-only memory map of the stored array, so
+        reading a few images (detail transfer's neighbours) touches only their pages; the whole
+        array where it cannot be mapped (in memory, or a compressed member)."""
+        if which in self.arrays or self.path is None:
+            return self.pixels(which)
+        mapped = _map_npz_member(self.path / BANK, which)
+        return self.pixels(which) if mapped is None else mapped
+
+
+def _map_npz_member(path: Path, name: str) -> np.ndarray | None:
+    """Memory map of an uncompressed .npz member (np.savez stores members uncompressed), or None."""
+    import zipfile
+
+    with zipfile.ZipFile(path) as zf:
+        try:
+            info = zf.getinfo(name + ".npy")
+        except KeyError:
+            raise KeyError(f"{name}: not in {path}") from None
+        if info.compress_type != zipfile.ZIP_STORED:
+            return None
+    with open(path, "rb") as fh:
+        fh.seek(info.header_offset)
+        local = fh.read(30)  # the local file header: its name and extra field lengths sit at 26..30
+        name_len, extra_len = int.from_bytes(local[26:28], "little"), int.from_bytes(local[28:30], "little")
+        fh.seek(info.header_offset + 30 + name_len + extra_len)
+        version = np.lib.format.read_magic(fh)
+        read_header = {(1, 0): np.lib.format.read_array_header_1_0,
+                       (2, 0): np.lib.format.read_array_header_2_0}.get(version)
+        if read_header is None:
+            return None
+        shape, fortran, dtype = read_header(fh)
+        offset = fh.tell()
+    if fortran or dtype.hasobject:
+        return None
+    return np.memmap(path, dtype=dtype, mode="r", offset=offset, shape=shape)
+
 
 def _to_uint8(images: np.ndarray) -> np.ndarray:
     return np.round(np.clip(images, 0.0, 1.0) * 255.0).astype(np.uint8)

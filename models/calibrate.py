@@ -19,7 +19,7 @@ import numpy as np
 from . import route as lroute
 from .bundle import Bundle
 from .confidence import fit_confidence
-from .engine import ROUTES, Engine
+from .engine import FITTED_SIGNALS, REFINED_SIGNALS, ROUTES, Engine
 from .metrics import psnr_batch, ssim_batch
 from .refine import RefineConfig
 from .triplets import mine_triplets
@@ -105,6 +105,7 @@ def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np
                  holdout={"decoded": dec, "refined": ref, "by_tolerance": {str(k): v for k, v in tried.items()}})
     entry["on"] = bool(ref["psnr"] >= dec["psnr"] + REFINE_MARGIN_DB and ref["ssim"] >= dec["ssim"])
     engine.refine = RefineConfig(tolerance=best) if entry["on"] else None
+    engine.signal_names = REFINED_SIGNALS if entry["on"] else FITTED_SIGNALS  # the confidence follows
     return entry
 
 
@@ -126,8 +127,8 @@ def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_image
     truth += list(range(len(holdout_params)))
     kinds += ["fill"] * len(holdout_params)
     codes = np.asarray(codes)
-    images = engine.render(codes)[0]  # as served: refined when the model refines
-    sig = engine.signals(codes, images, np.asarray(intended))
+    images, detail = engine.render(codes)  # as served: refined when the model refines
+    sig = engine.signals(codes, images, np.asarray(intended), detail=detail)
     ssim = ssim_batch(images, holdout_images[np.asarray(truth)])
     return sig, ssim, kinds
 

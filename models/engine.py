@@ -17,6 +17,7 @@ synthesized, not captured.
 """
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -37,10 +38,13 @@ from .train import to_images, to_tensor
 from .triplets import normalised_coords
 
 ROUTES = ("geodesic", "straight")
-SIGNALS = ("cycle", "nearest", "settings", "image_cycle")  # every signal the engine can compute
+LEGACY_SIGNALS = ("cycle", "nearest", "settings", "image_cycle")  # bundles whose confidence names none
+SIGNALS = LEGACY_SIGNALS + ("detail",)  # every signal the engine can compute
 # what a new model's confidence is fitted on: image_cycle would cost a second decode per request
 # and adds nothing the cycle residual does not already carry (see bench/RESULTS.md)
 FITTED_SIGNALS = ("cycle", "nearest", "settings")
+# a refining model adds how little of the frame could be taken from real images (1 - detail share)
+REFINED_SIGNALS = FITTED_SIGNALS + ("detail",)
 DEFAULT_TUBE = 1.0  # bank spacings: a route keeps within one sample spacing of real samples
 
 
@@ -93,7 +97,8 @@ class Answer(FrameCounts):
 class Engine:
     def __init__(self, bundle: Bundle, *, graph_k: int | None = None, relax_rounds: int = 20,
                  relax_step: float = 0.5, project_rounds: bool = False, chart_neighbours: int = 6,
-                 attach: int = 3, tube: float | str | None = "bundle", refine: bool | str = "bundle"):
+                 attach: int = 3, tube: float | str | None = "bundle", refine: bool | str = "bundle",
+                 refine_threads: int = 2):
         self.bundle = bundle
         self.model = inference_copy(bundle.model)  # the bundle's own model stays as trained
         self.space = bundle.space
@@ -110,6 +115,7 @@ class Engine:
         chosen = bundle.manifest.get("refine") or {}
         on = bool(chosen.get("on", False)) if refine == "bundle" else bool(refine)
         self.refine = RefineConfig.from_dict(chosen.get("config")) if on else None
+        self.refine_threads = max(1, int(refine_threads))  # threads that refine one answer's frames
         pixels = bundle.pixels()  # read for the pruning test only, not kept
         self.graph = lgraph.build_graph(bundle.codes, k=graph_k, params=bundle.params, space=self.space,
                                         param_scale=self.scale, images=pixels.reshape(len(pixels), -1))
@@ -123,7 +129,8 @@ class Engine:
         self.confidence = ConfidenceModel.from_dict(conf["model"]) if conf else None
         self.tau = float(conf["tau"]) if conf else None
         # a model computes only the signals its confidence was fitted on (older bundles: all four)
-        self.signal_names = tuple(conf.get("signals", SIGNALS)) if conf else FITTED_SIGNALS
+        self.signal_names = (tuple(conf.get("signals", LEGACY_SIGNALS)) if conf
+                             else REFINED_SIGNALS if self.refine is not None else FITTED_SIGNALS)
         unknown = sorted(set(self.signal_names) - set(SIGNALS))
         if unknown:
             raise ValueError(f"confidence.signals: {unknown} are not signals this engine knows; "
@@ -142,8 +149,9 @@ class Engine:
 
     @cached_property
     def bank_pixels(self) -> np.ndarray:
-        """The bank's uint8 images, read once when detail transfer first needs them."""
-        return self.bundle.pixels()
+        """The bank's uint8 images for detail transfer: memory-mapped from the bundle on disk, so a
+        large bank's pixels are read as frames need them, not held."""
+        return self.bundle.mapped_pixels()
 
     def refined(self, codes: np.ndarray, images: np.ndarray, cfg: RefineConfig | None = None
                 ) -> tuple[np.ndarray, np.ndarray]:
@@ -153,7 +161,11 @@ class Engine:
         k = min(cfg.neighbours, len(self.bundle.codes))
         _, idx = self.graph.tree.query(self.graph.warp(codes), k=k)
         refs = self.bank_pixels[np.asarray(idx).reshape(len(codes), k)].astype(np.float32) / 255.0
-        return lrefine.refine(images, refs, cfg)
+        return lrefine.refine(images, refs, cfg, pool=self._refine_pool)
+
+    @cached_property
+    def _refine_pool(self) -> ThreadPoolExecutor | None:
+        return ThreadPoolExecutor(self.refine_threads, thread_name_prefix="refine") if self.refine_threads > 1 else None
 
     def render(self, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
         """The frames as served: decoded, then refined when this model refines; (images, detail)."""
@@ -275,11 +287,12 @@ class Engine:
 
     # -- confidence ---------------------------------------------------------------------------
     def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray,
-                shown: np.ndarray | None = None) -> np.ndarray:
+                shown: np.ndarray | None = None, detail: np.ndarray | None = None) -> np.ndarray:
         """(N, len(self.signal_names)) off-manifold signals, each larger = worse: the cycle residual
         ||E(D(z)) - z|| and the distance to the nearest bank code (both in code spacings), the
         distance between the settings the frame shows and those it should show (settings
-        spacings), and the RMS pixel change of a second round trip D(E(D(z)))."""
+        spacings), the RMS pixel change of a second round trip D(E(D(z))), and the share of the frame
+        detail transfer could not take from real images (1 - detail; 1 for an unrefined frame)."""
         names = self.signal_names
         with torch.inference_mode():
             round_trip = {"cycle", "image_cycle"} & set(names)
@@ -290,7 +303,8 @@ class Engine:
                 "nearest": lambda: self.graph.tree.query(self.graph.warp(codes), k=1)[0] / self.spacing,
                 "settings": lambda: self.space.distance(self.settings_of(codes) if shown is None else shown,
                                                         intended, self.scale),
-                "image_cycle": lambda: np.sqrt(np.mean((img2 - images) ** 2, axis=(1, 2, 3)))}
+                "image_cycle": lambda: np.sqrt(np.mean((img2 - images) ** 2, axis=(1, 2, 3))),
+                "detail": lambda: 1.0 - (np.zeros(len(codes)) if detail is None else np.asarray(detail, float))}
         return np.stack([make[n]() for n in names], axis=1).reshape(len(codes), len(names))
 
     def score(self, sig: np.ndarray) -> np.ndarray | None:
@@ -301,7 +315,7 @@ class Engine:
     def _frames(self, codes, t, intended, min_confidence) -> list[Frame]:
         images, detail = self.render(codes)
         shown = self.settings_of(codes)
-        sig = self.signals(codes, images, intended, shown)
+        sig = self.signals(codes, images, intended, shown, detail)
         conf = self.score(sig)
         frames = []
         for i in range(len(codes)):

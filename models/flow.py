@@ -29,9 +29,10 @@ def luma8(img: np.ndarray) -> np.ndarray:
     return np.round(np.clip(img, 0.0, 1.0) * 255.0).astype(np.uint8)
 
 
-def flow(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """(H, W, 2) float32 displacement (dx, dy) in pixels with a(x) ~ b(x + f(x))."""
-    return cv2.calcOpticalFlowFarneback(luma8(a), luma8(b), None, **FARNEBACK)
+def flow(a: np.ndarray, b: np.ndarray, settings: dict | None = None) -> np.ndarray:
+    """(H, W, 2) float32 displacement (dx, dy) in pixels with a(x) ~ b(x + f(x)); `settings` are
+    Farneback's (default FARNEBACK)."""
+    return cv2.calcOpticalFlowFarneback(luma8(a), luma8(b), None, **(settings or FARNEBACK))
 
 
 def warp(img: np.ndarray, f: np.ndarray) -> np.ndarray:

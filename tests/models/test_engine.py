@@ -111,17 +111,32 @@ def test_tube_is_chosen_on_the_held_out_share(small_engine):
 
 
 def test_a_new_model_computes_only_the_signals_it_was_fitted_on(small_engine):
-    from models.engine import FITTED_SIGNALS
+    from models.engine import FITTED_SIGNALS, REFINED_SIGNALS
 
-    assert small_engine.manifest["confidence"]["signals"] == list(FITTED_SIGNALS)
+    want = REFINED_SIGNALS if small_engine.manifest["refine"]["on"] else FITTED_SIGNALS
+    assert small_engine.manifest["confidence"]["signals"] == list(want)
     ans = small_engine.between(P(30, 30), P(120, 50), frames=3)
-    assert all(set(f.signals) == set(FITTED_SIGNALS) for f in ans.frames)
+    assert all(set(f.signals) == set(want) for f in ans.frames)
+
+
+def test_a_refining_model_scores_how_much_detail_it_took(small_bundle):
+    # the detail signal is 1 - the frame's detail share; an unrefined frame scores 1 (nothing taken)
+    from models.engine import REFINED_SIGNALS, Engine
+
+    on, off = Engine.load(small_bundle, refine=True), Engine.load(small_bundle, refine=False)
+    for engine in (on, off):  # the signals alone: no confidence model fitted on them here
+        engine.signal_names, engine.confidence = REFINED_SIGNALS, None
+    for engine in (on, off):
+        ans = engine.between(P(30, 30), P(120, 50), frames=4)
+        for f in ans.frames:
+            assert f.signals["detail"] == pytest.approx(1.0 - (f.detail or 0.0))
+    assert all(f.detail is None for f in off.between(P(30, 30), P(120, 50), frames=2).frames)
 
 
 def test_older_bundles_with_four_signals_still_score(small_bundle):
     from models.bundle import load_bundle
     from models.confidence import fit_confidence
-    from models.engine import SIGNALS, Engine
+    from models.engine import LEGACY_SIGNALS as SIGNALS, Engine
 
     bundle = load_bundle(small_bundle)
     rng = np.random.default_rng(0)

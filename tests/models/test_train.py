@@ -124,3 +124,24 @@ def test_ssim_term_trains(tiny_scene):
     res = train(tiny_scene, train_config=TrainConfig(steps=12, w_ssim=0.5, batch_triplets=4, extra_images=4),
                 progress=None)
     assert np.isfinite(res.metrics["train_psnr"])
+
+
+def test_bank_pixels_are_memory_mapped_and_equal_the_stored_ones(tiny_scene, tmp_path):
+    import shutil
+    import zipfile
+
+    train_bundle(tiny_scene, tmp_path / "b", name="t", train_config=TrainConfig(steps=3), progress=None,
+                 calibrate=False)
+    bundle = load_bundle(tmp_path / "b")
+    for which in ("images", "holdout_images"):
+        mapped = bundle.mapped_pixels(which)
+        assert isinstance(mapped, np.memmap) and np.array_equal(mapped, bundle.pixels(which))
+    # a compressed bank cannot be mapped: the stored array is read instead
+    shutil.copytree(tmp_path / "b", tmp_path / "c")
+    with np.load(tmp_path / "b" / "bank.npz") as z:
+        np.savez_compressed(tmp_path / "c" / "bank.npz", **{k: z[k] for k in z.files})
+    with zipfile.ZipFile(tmp_path / "c" / "bank.npz") as zf:
+        assert all(i.compress_type == zipfile.ZIP_DEFLATED for i in zf.infolist())
+    other = load_bundle(tmp_path / "c")
+    got = other.mapped_pixels()
+    assert not isinstance(got, np.memmap) and np.array_equal(got, bundle.pixels())
