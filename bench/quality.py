@@ -1,9 +1,9 @@
 """In-between quality on a scene's truth set, against baselines, with confidence calibration.
 
-    python bench/quality.py [--scene demo|colour|photo] [--resolution 64] [--preset default|quality]
-                            [--steps N] [--budget-seconds S] [--out DIR]
+    python bench/quality.py [--scene demo|colour|photo] [--resolution 64] [--steps N]
+                            [--latent-dim D] [--w-ssim W] [--budget-seconds S] [--out DIR]
 
-Trains the scene's model (the preset's settings unless told), with calibration, then runs the
+Trains the scene's model (default settings unless told), with calibration, then runs the
 eval report: cross-dissolve, optical-flow warping, straight route, geodesic route (as served,
 refined when the model refines, plus the decoded frames before refinement), the model's ceiling;
 PSNR, SSIM, p10, pacing, confidence ECE / AUROC / confusion; and route and 16-frame answer times.
@@ -22,18 +22,19 @@ from common import scene_folders, set_threads
 
 
 def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: float | None = None,
-            out: Path | None = None, pairs: int = 90, scene_kind: str = "demo", preset: str = "default") -> dict:
+            out: Path | None = None, pairs: int = 90, scene_kind: str = "demo", latent_dim: int | None = None,
+            w_ssim: float = 0.0) -> dict:
     from models.engine import Endpoint, Engine
     from models.evaluate import evaluate
     from models.pipeline import train_bundle
     from models.scene import load_scene
-    from models.train import preset_configs
+    from models.train import TrainConfig, default_model_config
 
     scene_dir, truth_dir = scene_folders(scene_kind, resolution, pairs=pairs)
     scene = load_scene(scene_dir, resolution=resolution)
     out = Path(out or tempfile.mkdtemp(prefix="geotween-bench-"))
-    mcfg, cfg = preset_configs(scene, preset)
-    cfg.budget_seconds = budget_seconds
+    mcfg = default_model_config(scene, latent_dim=latent_dim)
+    cfg = TrainConfig(budget_seconds=budget_seconds, w_ssim=w_ssim)
     if steps is not None:
         cfg.steps = steps
     t0 = time.perf_counter()
@@ -56,7 +57,7 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
         engine.between(Endpoint(image=imgs[i]), Endpoint(image=imgs[-1 - i]), frames=16)
         times.append((time.perf_counter() - t) * 1e3)
     conf = manifest["metrics"].get("confidence", {})
-    summary = {"scene": scene_kind, "preset": preset, "resolution": resolution,
+    summary = {"scene": scene_kind, "latent_dim": mcfg.latent_dim, "w_ssim": w_ssim, "resolution": resolution,
                "train_seconds_incl_calibration": round(train_wall, 1), "refine": manifest.get("refine"),
                "fit": {k: v for k, v in manifest["metrics"].items() if k != "confidence"},
                "calibration": {k: conf.get(k) for k in ("status", "rows", "ece", "auroc", "method")},
@@ -75,11 +76,10 @@ def main() -> None:
 
     from common import SCENES
 
-    from models.train import PRESETS
-
     p = argparse.ArgumentParser()
     p.add_argument("--scene", choices=SCENES, default="demo")
-    p.add_argument("--preset", choices=sorted(PRESETS), default="default")
+    p.add_argument("--latent-dim", type=int, default=None, help="default: parameters + periodic parameters")
+    p.add_argument("--w-ssim", type=float, default=0.0, help="weight of the SSIM term beside the pixel loss")
     p.add_argument("--resolution", type=int, default=64)
     p.add_argument("--steps", type=int, default=None)
     p.add_argument("--budget-seconds", type=float, default=None)
@@ -87,7 +87,8 @@ def main() -> None:
     args = p.parse_args()
     set_threads()
     summary = measure(args.resolution, steps=args.steps, budget_seconds=args.budget_seconds,
-                      out=Path(args.out) if args.out else None, scene_kind=args.scene, preset=args.preset)
+                      out=Path(args.out) if args.out else None, scene_kind=args.scene,
+                      latent_dim=args.latent_dim, w_ssim=args.w_ssim)
     print(format_table(summary["report"]))
     print(json.dumps({k: v for k, v in summary.items() if k != "report"}, indent=1))
 

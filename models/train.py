@@ -117,26 +117,6 @@ def _lr_at(done: float, cfg: TrainConfig) -> float:
     return low + 0.5 * (cfg.lr - low) * (1 + math.cos(math.pi * u))
 
 
-# Training presets: (ModelConfig overrides, TrainConfig overrides). "default" keeps the demo within
-# its training-time target on 2 cores; "quality" adds latent room beyond the intrinsic dimension
-# (the collinearity term keeps the manifold flat in it) and an SSIM term. It keeps the step count:
-# on the photo window, twice the steps over-fitted (held-out 24.8 -> 23.9 dB). Times and gains per
-# scene are in bench/RESULTS.md.
-PRESETS: dict[str, tuple[dict, dict]] = {
-    "default": ({}, {}),
-    "quality": ({"latent_dim": 8}, {"w_ssim": 0.2}),
-}
-
-
-def preset_configs(scene: Scene, preset: str = "default", **model_overrides) -> tuple[ModelConfig, "TrainConfig"]:
-    """(ModelConfig, TrainConfig) of a named preset for `scene`; explicit overrides win."""
-    if preset not in PRESETS:
-        raise ValueError(f"preset: {preset!r} is not allowed; expected one of {sorted(PRESETS)}")
-    model_kw, train_kw = PRESETS[preset]
-    mcfg = default_model_config(scene, **{**model_kw, **{k: v for k, v in model_overrides.items() if v is not None}})
-    return mcfg, TrainConfig(**train_kw)
-
-
 def default_model_config(scene: Scene, **overrides) -> ModelConfig:
     """Latent dimension = number of parameters + one per periodic parameter, unless overridden."""
     kw = dict(resolution=scene.resolution, channels=scene.channels,

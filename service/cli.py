@@ -46,20 +46,19 @@ def cmd_render_demo(args) -> int:
 
 def train_into_registry(scene_dir: Path, name: str, registry, *, resolution: int, latent_dim: int | None,
                         steps: int | None, budget: float | None, seed: int, quiet: bool = False,
-                        preset: str = "default",
                         on_step=None):
     """Load a scene folder, train, and publish the bundle; returns the ModelVersion."""
     from models.pipeline import train_bundle
     from models.scene import load_scene
-    from models.train import preset_configs
+    from models.train import TrainConfig, default_model_config
     from .registry import check_name
 
     check_name(name)  # fail before minutes of training, not after
     scene = load_scene(scene_dir, resolution=resolution)
-    mcfg, tcfg = preset_configs(scene, preset, latent_dim=latent_dim)
-    tcfg.seed, tcfg.budget_seconds = seed, budget
+    tcfg = TrainConfig(seed=seed, budget_seconds=budget)
     if steps is not None:
         tcfg.steps = steps
+    mcfg = default_model_config(scene, latent_dim=latent_dim)
     progress = None if quiet else sys.stderr
     return registry.publish(name, lambda folder: train_bundle(
         scene, folder, name=name, model_config=mcfg, train_config=tcfg, progress=progress,
@@ -69,7 +68,7 @@ def train_into_registry(scene_dir: Path, name: str, registry, *, resolution: int
 def cmd_train(args) -> int:
     entry = train_into_registry(Path(args.scene), args.name, _registry(args), resolution=args.resolution,
                                 latent_dim=args.latent_dim, steps=args.steps, budget=args.budget_seconds,
-                                seed=args.seed, preset="quality" if args.quality else "default")
+                                seed=args.seed)
     print(f"registered {entry.name}@{entry.version}")
     _print_json(entry.metrics)
     return EXIT_OK
@@ -265,8 +264,6 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--latent-dim", type=int, default=None, help="default: parameters + periodic parameters")
     s.add_argument("--steps", type=int, default=None)
     s.add_argument("--budget-seconds", type=float, default=None, help="wall-clock cap on training")
-    s.add_argument("--quality", action="store_true",
-                   help="the quality preset: a wider latent and an SSIM term (see bench/RESULTS.md)")
     s.add_argument("--seed", type=int, default=0)
     s.set_defaults(func=cmd_train)
 

@@ -31,19 +31,6 @@ def open_engine(registry, name: str, version: int | None = None):
     return Engine.load(entry.path), entry
 
 
-def client_between(url: str, name: str, start, end, *, frames: int = 8, route: str = "geodesic",
-                   min_confidence: float = 0.5, version: int | None = None, api_key: str | None = None):
-    """between through a running service; a refused request becomes a UsageError (exit 2)."""
-    from .client import Client, ClientError
-
-    try:
-        with Client(url, api_key=api_key) as client:
-            return client.between(name, start, end, frames=frames, route=route, min_confidence=min_confidence,
-                                  version=version)
-    except ClientError as exc:
-        raise UsageError(f"{url}: {exc}") from None
-
-
 class ProgressBar:
     """A one-line text progress bar (default on stderr); `width` in characters."""
 

@@ -39,14 +39,13 @@ def test_quick_run_measures_every_stage(tmp_path):
     assert proc.returncode == 0, proc.stderr[-3000:]
     text = out.read_text()
     assert "Notes." in text and "--quick" in text
-    for heading in ("Quality at 16 px", "Quality at 32 px", "Colour relief tile at 16 px (default preset)",
-                    "Photo window at 16 px (default preset)", "Photo window, quality preset at 16 px",
+    for heading in ("Quality at 16 px", "Quality at 32 px", "Colour relief tile at 16 px", "Photo window at 16 px",
                     "Latency and throughput", "Route search", "Service memory"):
         assert heading in text, heading
-    # every method row of the five quality tables carries numbers
+    # every method row of the four quality tables carries numbers
     for method in ("dissolve", "flow", "straight", "geodesic", "ceiling"):
         rows = re.findall(rf"^\| {method} \| ([0-9.]+) \| ([0-9.]+) \|", text, flags=re.M)
-        assert len(rows) == 5 and all(float(p) > 0 for p, _ in rows), method
+        assert len(rows) == 4 and all(float(p) > 0 for p, _ in rows), method
     # routes agree with scipy's Dijkstra to rounding
     diffs = [float(x) for x in re.findall(r"\| ([0-9.]+e[+-][0-9]+) \(\d+ pairs\) \|", text)]
     assert len(diffs) == 3 and max(diffs) < 1e-9

@@ -107,19 +107,6 @@ def test_ssim_loss_equals_scikit_image():
     assert float(ssim(torch.from_numpy(a), torch.from_numpy(a))) == pytest.approx(1.0, abs=1e-6)
 
 
-def test_presets_set_their_configs_and_refuse_unknown_names(tiny_scene):
-    from models.train import PRESETS, preset_configs
-
-    m, t = preset_configs(tiny_scene, "default")
-    assert (m, t) == (default_model_config(tiny_scene), TrainConfig())
-    m, t = preset_configs(tiny_scene, "quality")
-    model_kw, train_kw = PRESETS["quality"]
-    assert m.latent_dim == model_kw["latent_dim"] and t.w_ssim == train_kw["w_ssim"] > 0
-    assert preset_configs(tiny_scene, "quality", latent_dim=5)[0].latent_dim == 5  # explicit wins
-    with pytest.raises(ValueError, match="preset"):
-        preset_configs(tiny_scene, "best")
-
-
 def test_ssim_term_trains(tiny_scene):
     res = train(tiny_scene, train_config=TrainConfig(steps=12, w_ssim=0.5, batch_triplets=4, extra_images=4),
                 progress=None)
