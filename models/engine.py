@@ -112,9 +112,9 @@ class Engine:
         self.chart_neighbours = chart_neighbours
         # detail transfer from the nearest real images: "bundle" = as chosen on the held-out share at
         # training time (off for bundles without a choice); True / False force it
-        chosen = bundle.manifest.get("refine") or {}
-        on = bool(chosen.get("on", False)) if refine == "bundle" else bool(refine)
-        self.refine = RefineConfig.from_dict(chosen.get("config")) if on else None
+        chosen = lrefine.choice(bundle.manifest)
+        on = chosen["on"] if refine == "bundle" else bool(refine)
+        self.refine = RefineConfig.from_dict(chosen["config"]) if on else None
         self.refine_threads = max(1, int(refine_threads))  # threads that refine one answer's frames
         pixels = bundle.pixels()  # read for the pruning test only, not kept
         self.graph = lgraph.build_graph(bundle.codes, k=graph_k, params=bundle.params, space=self.space,

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 from concurrent.futures import Executor
 from dataclasses import asdict, dataclass
+from typing import Mapping
 
 import numpy as np
 from scipy.ndimage import gaussian_filter
@@ -49,6 +50,25 @@ class RefineConfig:
     def from_dict(cls, d: dict | None) -> "RefineConfig":
         names = cls.__dataclass_fields__
         return cls(**{k: v for k, v in (d or {}).items() if k in names})
+
+
+def choice(manifest: Mapping) -> dict:
+    """A bundle manifest's detail-transfer choice, read the one way the engine, the API and the
+    CLI use: {"on", "chosen", "config", "holdout"}. "chosen" is False for a bundle trained without a
+    choice (it never refines); "holdout" is {"decoded": {psnr, ssim}, "refined": {psnr, ssim,
+    detail}}, the held-out figures behind the choice, or None."""
+    entry = manifest.get("refine")
+    if not isinstance(entry, Mapping) or not entry:
+        return {"on": False, "chosen": False, "config": None, "holdout": None}
+    held = entry.get("holdout") or {}
+    scores = None
+    if held.get("decoded") and held.get("refined"):
+        dec, ref = held["decoded"], held["refined"]
+        scores = {"decoded": {"psnr": dec.get("psnr"), "ssim": dec.get("ssim")},
+                  "refined": {"psnr": ref.get("psnr"), "ssim": ref.get("ssim"), "detail": ref.get("detail")}}
+    config = entry.get("config")
+    return {"on": bool(entry.get("on", False)), "chosen": True,
+            "config": dict(config) if isinstance(config, Mapping) else None, "holdout": scores}
 
 
 def _blur(img: np.ndarray, sigma: float) -> np.ndarray:

@@ -77,13 +77,14 @@ def cmd_train(args) -> int:
 def refine_line(manifest: dict) -> str:
     """Whether a model refines its frames with detail from real training images, and the held-out
     in-betweens behind that choice (decoded -> refined), from its bundle manifest."""
-    chosen = manifest.get("refine")
-    if not isinstance(chosen, dict) or not chosen:
+    from models.refine import choice
+
+    chosen = choice(manifest)
+    if not chosen["chosen"]:
         return "detail transfer off (no choice made at training time)"
-    text = "detail transfer " + ("on" if chosen.get("on") else "off")
-    held = chosen.get("holdout") or {}
-    dec, ref = held.get("decoded"), held.get("refined")
-    if dec and ref:
+    text = "detail transfer " + ("on" if chosen["on"] else "off")
+    if chosen["holdout"]:
+        dec, ref = chosen["holdout"]["decoded"], chosen["holdout"]["refined"]
         text += (f"; held-out in-betweens PSNR {dec['psnr']:.2f} -> {ref['psnr']:.2f} dB, "
                  f"SSIM {dec['ssim']:.4f} -> {ref['ssim']:.4f} when refined")
         if ref.get("detail") is not None:

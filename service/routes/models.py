@@ -10,6 +10,7 @@ from starlette.concurrency import run_in_threadpool
 
 from models.engine import Endpoint
 from models.params import ParamSpace
+from models.refine import choice as refine_choice
 
 from ..deps import ApiKeyDep, ModelCache, ModelName, Services, ServicesDep, note
 from ..errors import BadInput
@@ -84,23 +85,6 @@ async def _answer_between(request: Request, services: Services, name: str, start
     return respond(request, answer)
 
 
-def refine_summary(manifest: Mapping) -> dict:
-    """The manifest's detail-transfer choice as RefineOut. `on` follows the rule the engine uses
-    (Engine(refine="bundle")); a bundle without a choice never refines."""
-    chosen = manifest.get("refine")
-    if not isinstance(chosen, Mapping) or not chosen:
-        return {"on": False, "chosen": False, "config": None, "holdout": None}
-    holdout = chosen.get("holdout") or {}
-    scores = None
-    if holdout.get("decoded") and holdout.get("refined"):
-        dec, ref = holdout["decoded"], holdout["refined"]
-        scores = {"decoded": {"psnr": dec.get("psnr"), "ssim": dec.get("ssim")},
-                  "refined": {"psnr": ref.get("psnr"), "ssim": ref.get("ssim"), "detail": ref.get("detail")}}
-    config = chosen.get("config")
-    return {"on": bool(chosen.get("on", False)), "chosen": True,
-            "config": dict(config) if isinstance(config, Mapping) else None, "holdout": scores}
-
-
 # -- routes -------------------------------------------------------------------------------------
 @router.get("/models", operation_id="list_models", response_model=ModelListOut,
             responses=errors(503), summary="Every registered model and its latest version")
@@ -137,7 +121,7 @@ def get_model(name: ModelName, services: ServicesDep,
                                  "periodic": bool(p.get("periodic", False))} for p in manifest["space"]],
                     resolution=int(manifest["resolution"]),
                     channels=int(manifest["channels"]), metrics=chosen.metrics, calibration=calibration,
-                    refine=refine_summary(manifest))
+                    refine=refine_choice(manifest))
 
 
 @router.delete("/models/{name}/{version}", operation_id="delete_model_version", response_model=DeletedOut,
