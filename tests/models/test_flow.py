@@ -19,11 +19,12 @@ def crop(photo, x, y, size=64):
     return photo[y:y + size, x:x + size]
 
 
+@pytest.mark.parametrize("method", lflow.METHODS)
 @pytest.mark.parametrize("dx, dy", [(3, 0), (0, -2), (2, 3), (-4, 1)])
-def test_flow_recovers_a_known_translation_within_a_pixel(photo, dx, dy):
+def test_flow_recovers_a_known_translation_within_a_pixel(photo, dx, dy, method):
     # a(x) = P(x + o) and b(x) = P(x + o + s), so a(x) = b(x - s): the true flow is -s everywhere
     a, b = crop(photo, 200, 150), crop(photo, 200 + dx, 150 + dy)
-    f = lflow.flow(a, b)[8:-8, 8:-8]  # away from the edges, where content enters or leaves
+    f = lflow.flow(a, b, method=method)[8:-8, 8:-8]  # away from the edges, where content enters or leaves
     med = np.median(f.reshape(-1, 2), axis=0)
     assert abs(med[0] + dx) < 1.0 and abs(med[1] + dy) < 1.0, med
     # most pixels too; flat patches carry no measurable motion (the aperture problem)
@@ -66,3 +67,22 @@ def test_grayscale_frames_keep_their_shape():
     a = ndimage.gaussian_filter(rng.random((32, 32, 1)).astype(np.float32), (1.5, 1.5, 0))
     out = lflow.tween(a, a, [0.25, 0.75])
     assert out.shape == (2, 32, 32, 1) and np.allclose(out, a, atol=2e-3)
+
+
+def test_threads_each_get_their_own_dis_estimator(photo):
+    # an OpenCV DIS object shared by two threads corrupts memory; each thread must get its own,
+    # and the answers must not depend on which thread computed them
+    from concurrent.futures import ThreadPoolExecutor
+
+    pairs = [(crop(photo, 100 + 9 * i, 120), crop(photo, 102 + 9 * i, 121)) for i in range(12)]
+    alone = [lflow.flow(a, b, method="dis") for a, b in pairs]
+    with ThreadPoolExecutor(2) as pool:
+        together = list(pool.map(lambda p: lflow.flow(*p, method="dis"), pairs * 4))
+        owners = set(pool.map(lambda _: id(lflow._dis()), range(8)))
+    assert all(np.array_equal(x, y) for x, y in zip(alone * 4, together))
+    assert id(lflow._dis()) not in owners  # the pool threads hold estimators of their own
+
+
+def test_an_unknown_flow_method_is_refused(photo):
+    with pytest.raises(ValueError, match="flow method"):
+        lflow.flow(crop(photo, 0, 0), crop(photo, 1, 0), method="nearest")

@@ -81,3 +81,33 @@ def test_engine_refinement_on_the_lamp_scene_stays_within_a_small_tolerance(smal
         assert all(f.detail is not None for f in ans.frames)
         worst = min(worst, float(np.min(psnr_batch(refined, truth) - psnr_batch(decoded, truth))))
     assert worst > -0.3, worst
+
+
+@pytest.mark.parametrize("shape", [(64, 64, 1), (3, 32, 32, 3), (50, 1, 24, 20, 3)])
+def test_batch_blur_matches_scipy_gaussian_filter(shape):
+    # reference: scipy.ndimage.gaussian_filter, mode "nearest" (edges repeated), over H and W only;
+    # 50 RGB frames are 150 planes, more than one OpenCV call takes
+    x = np.random.default_rng(3).random(shape, dtype=np.float32)
+    sigma = (0,) * (len(shape) - 3) + (1.5, 1.5, 0)
+    want = gaussian_filter(x, sigma, mode="nearest")
+    got = lrefine._blur(x, 1.5)
+    assert got.shape == x.shape and np.abs(got - want).max() < 1e-5
+
+
+def test_a_batch_refines_as_its_frames_do_one_by_one(photo_views):
+    frames, refs = photo_views
+    out, detail = lrefine.refine(frames, refs)
+    for i in range(len(frames)):
+        one, share = lrefine.refine_frame(frames[i], refs[i])
+        assert np.abs(one - out[i]).max() < 1e-6 and share == pytest.approx(detail[i], abs=1e-4)  # float32 sums in another order
+
+
+@pytest.fixture(scope="module")
+def photo_views():
+    # scikit-image's "coffee" photograph (ships inside the scikit-image wheel): 5 blurred 64 px
+    # crops, each with two real neighbours shifted by a few pixels
+    photo = skdata.coffee().astype(np.float32) / 255.0
+    frames = np.stack([blurred(photo[100 + 20 * i:164 + 20 * i, 200:264]) for i in range(5)])
+    refs = np.stack([np.stack([photo[102 + 20 * i:166 + 20 * i, 203:267], photo[98 + 20 * i:162 + 20 * i, 198:262]])
+                     for i in range(5)])
+    return frames, refs
