@@ -199,7 +199,7 @@ class Services:
 
 
 # -- dependencies -------------------------------------------------------------------------------
-def get_services(request: Request) -> Services:
+async def get_services(request: Request) -> Services:
     services = getattr(request.app.state, "services", None)
     if services is None:  # the lifespan has not run (or has ended)
         raise Unavailable("the service is not started", code="not_started")
@@ -217,7 +217,7 @@ _bearer = HTTPBearer(auto_error=False, description="an API key from GEOTWEEN_API
 _header = APIKeyHeader(name="X-API-Key", auto_error=False, description="an API key from GEOTWEEN_API_KEYS")
 
 
-def offered_key(bearer: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
+async def offered_key(bearer: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
                 header: Annotated[str | None, Depends(_header)]) -> str | None:
     """The key the caller sent, if any (Bearer first, then X-API-Key)."""
     return bearer.credentials if bearer is not None else header
@@ -243,14 +243,14 @@ def authorize(settings: Settings, offered: str | None) -> str:
 OfferedKey = Annotated[str | None, Depends(offered_key)]
 
 
-def require_api_key(services: ServicesDep, offered: OfferedKey) -> str:
+async def require_api_key(services: ServicesDep, offered: OfferedKey) -> str:
     return authorize(services.settings, offered)
 
 
 ApiKeyDep = Annotated[str, Depends(require_api_key)]
 
 
-def valid_name(name: Annotated[str, PathParam(description="model name, e.g. 'relief-tile'")]) -> str:
+async def valid_name(name: Annotated[str, PathParam(description="model name, e.g. 'relief-tile'")]) -> str:
     return check_name(name)
 
 

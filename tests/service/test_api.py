@@ -500,6 +500,8 @@ def with_refine(src: Path, folder: Path, *, on: bool) -> dict:
     holdout = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
     entry = choose_refine(engine, engine.bundle.arrays["holdout_params"], holdout)
     entry["on"] = on
+    if on:  # a 10-step model's frames are far from any real image: a wide tolerance lets them take real pixels
+        entry["config"]["tolerance"] = 0.3
     manifest = json.loads((folder / "manifest.json").read_text())
     manifest["refine"] = entry
     (folder / "manifest.json").write_text(json.dumps(manifest))
