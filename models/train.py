@@ -237,7 +237,9 @@ def decode(model: Autoencoder, codes: np.ndarray, batch: int = 256) -> np.ndarra
 
 def evaluate_fit(model: Autoencoder, scene: Scene, train_idx: np.ndarray, hold_idx: np.ndarray,
                  trip: Triplets) -> dict:
-    """Reconstruction PSNR/SSIM (dB, [0, 1]) on training and held-out images; mean triplet loss."""
+    """Reconstruction PSNR/SSIM (dB, [0, 1]) on training and held-out images; mean triplet loss,
+    over all triplets and split by whether the triplet moves along a periodic parameter (a closed
+    loop cannot be straight, so those keep a floor the collinearity term cannot remove)."""
     out: dict = {}
     for label, idx in (("train", train_idx), ("holdout", hold_idx)):
         if len(idx) == 0:
@@ -250,4 +252,12 @@ def evaluate_fit(model: Autoencoder, scene: Scene, train_idx: np.ndarray, hold_i
         z = torch.from_numpy(encode(model, scene.images[train_idx]).astype(np.float32))
         a = torch.from_numpy(trip.a.astype(np.float32))
         out["collinearity"] = round(float(losses.collinearity(z[trip.s], z[trip.m], z[trip.t], a)), 6)
+        params = scene.params[train_idx]
+        moves = scene.space.delta(params[trip.t], params[trip.s])[:, scene.space.periodic]
+        loop = np.any(np.abs(moves) > 1e-9, axis=1)
+        for key, rows in (("collinearity_periodic", loop), ("collinearity_other", ~loop)):
+            if rows.any():
+                r = np.flatnonzero(rows)
+                out[key] = round(float(losses.collinearity(z[trip.s[r]], z[trip.m[r]], z[trip.t[r]],
+                                                           a[torch.from_numpy(r)])), 6)
     return out

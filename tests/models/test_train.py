@@ -18,6 +18,17 @@ def test_training_lowers_reconstruction_and_the_collinearity_term_lowers_colline
     # an untrained encoder is nearly linear, so collinearity starts low; the term is what keeps it low
     assert shaped.metrics["collinearity"] < plain.metrics["collinearity"]
     assert shaped.metrics["holdout_psnr"] > 15.0
+    # the split by whether a triplet moves along the periodic azimuth averages back to the whole
+    from models.triplets import mine_triplets
+
+    cfg, params = TrainConfig(), tiny_scene.params[shaped.train_idx]
+    trip = mine_triplets(params, tiny_scene.space, scale=tiny_scene.space.spacing(tiny_scene.params),
+                         span=cfg.triplet_span, tolerance=cfg.triplet_tolerance)
+    loop = np.abs(tiny_scene.space.delta(params[trip.s], params[trip.t])[:, 0]) > 1e-9
+    assert 0 < loop.sum() < len(loop)
+    m = shaped.metrics
+    whole = (loop.sum() * m["collinearity_periodic"] + (~loop).sum() * m["collinearity_other"]) / len(loop)
+    assert whole == pytest.approx(m["collinearity"], rel=1e-3, abs=2e-6)
     assert set(shaped.train_idx).isdisjoint(shaped.holdout_idx)
     assert len(shaped.train_idx) + len(shaped.holdout_idx) == len(tiny_scene)
 
