@@ -153,6 +153,19 @@ def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images:
     return {"tau": tau, "signals": names, "model": model.to_dict()}, summary
 
 
+def calibrate_decoded(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
+                      tau: float = DEFAULT_TAU, seed: int = 0) -> tuple[dict | None, dict]:
+    """(confidence entry, report) for a refining model's frames served without detail transfer
+    (a request's refine: false): fitted the same way on the same held-out frames, decoded only,
+    with the signals of a model that does not refine."""
+    kept = engine.refine, engine.signal_names
+    engine.refine, engine.signal_names = None, FITTED_SIGNALS
+    try:
+        return calibrate_engine(engine, holdout_params, holdout_images, tau=tau, seed=seed)
+    finally:
+        engine.refine, engine.signal_names = kept
+
+
 def fit_serving(result, scene, arrays: dict[str, np.ndarray], *, tau: float = DEFAULT_TAU) -> dict:
     """Straight after training, from the in-memory model and bank arrays: the route's tube and
     the confidence model. Returns {"route", "refine", "confidence", "report"} for the bundle."""
@@ -166,5 +179,8 @@ def fit_serving(result, scene, arrays: dict[str, np.ndarray], *, tau: float = DE
     refine = choose_refine(engine, arrays["holdout_params"], arrays["holdout_images"], seed=seed)
     confidence, report = calibrate_engine(engine, arrays["holdout_params"], arrays["holdout_images"], tau=tau,
                                           seed=seed)
+    if engine.refine is not None:
+        refine["decoded_confidence"], report["decoded_frames"] = calibrate_decoded(
+            engine, arrays["holdout_params"], arrays["holdout_images"], tau=tau, seed=seed)
     return {"route": {"tube": tube, "holdout_psnr_by_tube": by_tube}, "refine": refine, "confidence": confidence,
             "report": report}

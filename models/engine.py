@@ -136,6 +136,11 @@ class Engine:
         # a model computes only the signals its confidence was fitted on (older bundles: all four)
         self.signal_names = (tuple(conf.get("signals", LEGACY_SIGNALS)) if conf
                              else REFINED_SIGNALS if self.refine is not None else FITTED_SIGNALS)
+        # a refining model's second confidence, fitted on its decoded frames: what a request that
+        # skips detail transfer (refine=False) is scored with; None for bundles trained without one
+        plain = (bundle.manifest.get("refine") or {}).get("decoded_confidence")
+        self.decoded_confidence = ConfidenceModel.from_dict(plain["model"]) if plain else None
+        self.decoded_signal_names = tuple(plain["signals"]) if plain else FITTED_SIGNALS
         unknown = sorted(set(self.signal_names) - set(SIGNALS))
         if unknown:
             raise ValueError(f"confidence.signals: {unknown} are not signals this engine knows; "
@@ -292,13 +297,15 @@ class Engine:
 
     # -- confidence ---------------------------------------------------------------------------
     def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray,
-                shown: np.ndarray | None = None, detail: np.ndarray | None = None) -> np.ndarray:
+                shown: np.ndarray | None = None, detail: np.ndarray | None = None,
+                names: Sequence[str] | None = None) -> np.ndarray:
         """(N, len(self.signal_names)) off-manifold signals, each larger = worse: the cycle residual
         ||E(D(z)) - z|| and the distance to the nearest bank code (both in code spacings), the
         distance between the settings the frame shows and those it should show (settings
         spacings), the RMS pixel change of a second round trip D(E(D(z))), and the share of the frame
-        detail transfer could not take from real images (1 - detail; 1 for an unrefined frame)."""
-        names = self.signal_names
+        detail transfer could not take from real images (1 - detail; 1 for an unrefined frame).
+        `names`: the signals to compute (default self.signal_names)."""
+        names = self.signal_names if names is None else tuple(names)
         with torch.inference_mode():
             round_trip = {"cycle", "image_cycle"} & set(names)
             z2 = self.model.encoder(to_tensor(images)).double().numpy() if round_trip else None
@@ -312,28 +319,33 @@ class Engine:
                 "detail": lambda: 1.0 - (np.zeros(len(codes)) if detail is None else np.asarray(detail, float))}
         return np.stack([make[n]() for n in names], axis=1).reshape(len(codes), len(names))
 
-    def score(self, sig: np.ndarray) -> np.ndarray | None:
-        if self.confidence is None:
-            return None
-        return self.confidence.predict(sig)
-
-    def _frames(self, codes, t, intended, min_confidence) -> list[Frame]:
-        images, detail = self.render(codes)
+    def _frames(self, codes, t, intended, min_confidence, refine: bool = True) -> list[Frame]:
+        if refine or self.refine is None:
+            images, detail = self.render(codes)
+            names, model = self.signal_names, self.confidence
+        else:  # a refining model asked for its decoded frames: scored by the confidence fitted on those
+            if self.confidence is not None and self.decoded_confidence is None:
+                raise ValueError("refine: this model version has no confidence fitted on frames without "
+                                 "detail transfer; ask with refine true, or train a new version")
+            images, detail = self.decode(codes), None
+            names, model = self.decoded_signal_names, self.decoded_confidence
         shown = self.settings_of(codes)
-        sig = self.signals(codes, images, intended, shown, detail)
-        conf = self.score(sig)
+        sig = self.signals(codes, images, intended, shown, detail, names=names)
+        conf = None if model is None else model.predict(sig)
         frames = []
         for i in range(len(codes)):
             c = None if conf is None else float(conf[i])
             frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(shown[i]),
                                 confidence=c, accepted=c is None or c >= min_confidence,
-                                signals=dict(zip(self.signal_names, map(float, sig[i]))),
+                                signals=dict(zip(names, map(float, sig[i]))),
                                 detail=None if detail is None else float(detail[i])))
         return frames
 
     def between(self, start: Endpoint, end: Endpoint, frames: int = 8, route: str = "geodesic",
-                min_confidence: float = 0.5) -> Answer:
-        """`frames` in-between frames, frame i at t = i / (frames + 1) of the route's length."""
+                min_confidence: float = 0.5, refine: bool = True) -> Answer:
+        """`frames` in-between frames, frame i at t = i / (frames + 1) of the route's length.
+        refine=False skips detail transfer on a refining model: its decoded frames, faster, scored
+        by the confidence fitted on decoded frames (no effect on a model that does not refine)."""
         if isinstance(frames, bool) or not isinstance(frames, (int, np.integer)) or frames < 1:
             raise ValueError(f"frames: {frames!r} is out of range; expected an integer >= 1")
         if not 0.0 <= min_confidence <= 1.0:
@@ -343,19 +355,20 @@ class Engine:
         line, nodes = self.route_line(zs, ze, route)
         codes, t = lroute.resample(line, frames, return_t=True)
         intended = self.space.lerp(ps, pe, t)
-        return Answer(route=route, frames=self._frames(codes, t, intended, min_confidence),
+        return Answer(route=route, frames=self._frames(codes, t, intended, min_confidence, refine),
                       start_params=self.space.named(ps), end_params=self.space.named(pe),
                       codes=codes, path_nodes=nodes, ends=np.stack([zs, ze]))
 
-    def fill(self, targets: Sequence[Mapping[str, float]], min_confidence: float = 0.5) -> list[Frame]:
-        """One frame per settings target (a missing view)."""
+    def fill(self, targets: Sequence[Mapping[str, float]], min_confidence: float = 0.5,
+             refine: bool = True) -> list[Frame]:
+        """One frame per settings target (a missing view); `refine` as for between."""
         if len(targets) == 0:
             raise ValueError("targets: empty; expected at least one settings target")
         if not 0.0 <= min_confidence <= 1.0:
             raise ValueError(f"min_confidence: {min_confidence!r} is outside [0, 1]")
         p = np.array([self.space.vector(tg) for tg in targets]).reshape(len(targets), len(self.space))
         codes = self.code_of_settings(p)
-        frames = self._frames(codes, np.zeros(len(p)), p, min_confidence)
+        frames = self._frames(codes, np.zeros(len(p)), p, min_confidence, refine)
         for f in frames:
             f.t = 0.0
         return frames

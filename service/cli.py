@@ -13,6 +13,10 @@ EXIT_OK, EXIT_BAD_INPUT, EXIT_REJECTED = 0, 2, 3
 LATENT_MAP = "latent_map.png"  # bank codes (PCA) with the route(s) drawn, beside the frames or report
 
 
+NO_REFINE_HELP = ("skip detail transfer on a model that refines: the decoded frames only, faster and softer, "
+                  "scored by the confidence fitted on decoded frames")
+
+
 class UsageError(ValueError):
     """Bad command-line input that no lower layer reports."""
 
@@ -165,7 +169,8 @@ def cmd_between(args) -> int:
         raise UsageError(f"--min-confidence: {args.min_confidence} is outside [0, 1]")
     engine, entry = _local_engine(args)
     start, end = parse_end(args.start, engine), parse_end(args.end, engine)
-    answer = engine.between(start, end, frames=args.frames, route=args.route, min_confidence=args.min_confidence)
+    answer = engine.between(start, end, frames=args.frames, route=args.route, min_confidence=args.min_confidence,
+                            refine=not args.no_refine)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     frames = []
@@ -279,6 +284,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--keep-rejected", action="store_true", help="write rejected frames too (marked in the manifest)")
     s.add_argument("--strict", action="store_true", help="exit 3 when any frame is rejected")
     s.add_argument("--version", type=int, default=None)
+    s.add_argument("--no-refine", action="store_true", help=NO_REFINE_HELP)
     s.set_defaults(func=cmd_between)
 
     s = sub.add_parser("eval", help="quality report against a truth set, with baselines")

@@ -16,7 +16,7 @@ import sys
 from pathlib import Path
 from typing import Callable, Mapping, Sequence, TextIO
 
-from .cli import EXIT_BAD_INPUT, EXIT_OK, UsageError
+from .cli import EXIT_BAD_INPUT, EXIT_OK, NO_REFINE_HELP, UsageError
 
 NOTICE = "frames are synthesized by a learned model, not captured"
 EXIT_SERVICE = 1  # the service could not be reached, or failed on its side
@@ -103,7 +103,8 @@ def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable
     frames = []
     progress(0, len(targets))
     for lo in range(0, len(targets), chunk):
-        for k, f in enumerate(engine.fill(targets[lo:lo + chunk], min_confidence=args.min_confidence)):
+        for k, f in enumerate(engine.fill(targets[lo:lo + chunk], min_confidence=args.min_confidence,
+                                          refine=not args.no_refine)):
             frames.append({"index": lo + k + 1, "target": dict(targets[lo + k]), "png": encode_png(f.image),
                            "confidence": f.confidence, "accepted": f.accepted, "params": f.params,
                            "detail": f.detail})
@@ -116,7 +117,7 @@ def _fill_remote(args, targets: Sequence[Mapping[str, float]], progress: Callabl
 
     with Client(args.url) as client:
         result = client.fill(args.name, targets, min_confidence=args.min_confidence, version=args.version,
-                             progress=progress)
+                             progress=progress, refine=not args.no_refine)
     frames = []
     for f in result.frames:
         buf = io.BytesIO()
@@ -224,4 +225,5 @@ def add_commands(subparsers) -> None:
     s.add_argument("--url", default=None, help="use a running service instead of the local registry")
     s.add_argument("--min-confidence", type=float, default=0.5, help="frames below it are not written")
     s.add_argument("--version", type=int, default=None, help="model version (default: the latest)")
+    s.add_argument("--no-refine", action="store_true", help=NO_REFINE_HELP)
     s.set_defaults(func=cmd_fill)

@@ -260,10 +260,11 @@ class Client:
 
     # -- frames -------------------------------------------------------------------------------
     def between(self, name: str, start: Any, end: Any, frames: int = 8, route: str = "geodesic",
-                min_confidence: float = 0.5, version: int | None = None) -> BetweenResult:
-        """Frames between two ends; each end is an image path, PIL image, array, or a settings dict."""
+                min_confidence: float = 0.5, version: int | None = None, refine: bool = True) -> BetweenResult:
+        """Frames between two ends; each end is an image path, PIL image, array, or a settings dict.
+        refine=False skips detail transfer on a model that refines (faster, softer frames)."""
         body = {"start": end_json(start), "end": end_json(end), "frames": frames, "route": route,
-                "min_confidence": min_confidence}
+                "min_confidence": min_confidence, "refine": bool(refine)}
         if version is not None:
             body["version"] = version
         d = self._json("POST", f"/v1/models/{_seg(name)}/between", json=body)
@@ -273,10 +274,11 @@ class Client:
 
     def fill(self, name: str, targets: Sequence[Mapping[str, float]], *, min_confidence: float = 0.5,
              version: int | None = None, as_job: bool = False,
-             progress: Callable[[int, int], None] | None = None, wait_timeout: float = 600.0) -> FillResult:
+             progress: Callable[[int, int], None] | None = None, wait_timeout: float = 600.0,
+             refine: bool = True) -> FillResult:
         """One frame per target; when the server answers 202 the job is polled until it is done."""
         body = {"targets": [{str(k): float(v) for k, v in t.items()} for t in targets],
-                "min_confidence": min_confidence, "as_job": as_job}
+                "min_confidence": min_confidence, "as_job": as_job, "refine": bool(refine)}
         if version is not None:
             body["version"] = version
         response = self._request("POST", f"/v1/models/{_seg(name)}/fill", json=body)

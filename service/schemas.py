@@ -15,6 +15,10 @@ DETAIL = ("share of the frame's pixels, 0 to 1, carried over from real training 
           "the nearest captured images are moved onto the frame along an estimated optical flow and kept only "
           "where they agree with the decoded frame. The frame is still synthesized, not captured. null when the "
           "model does not refine (chosen per model at training time)")
+REFINE_REQUEST = ("detail transfer on a model that refines (see GET /v1/models/{name}, refine.on). false: the "
+                  "decoded frames only, faster and softer, each scored by the model's confidence fitted on "
+                  "decoded frames (refused with 422 when the model has none: refine.skippable). No effect on a "
+                  "model that does not refine")
 ROUTES = ("geodesic", "straight")
 JOB_STATES = ("queued", "running", "done", "failed", "cancelled")
 RESOLUTIONS = (16, 32, 64, 128, 256)
@@ -65,6 +69,7 @@ class BetweenRequest(_Request):
     route: Literal["geodesic", "straight"] = "geodesic"
     min_confidence: float = Field(0.5, ge=0.0, le=1.0, description="frames below it are marked rejected")
     version: int | None = Field(None, ge=1, description="model version (default: the latest)")
+    refine: bool = Field(True, description=REFINE_REQUEST)
 
     model_config = ConfigDict(json_schema_extra={"examples": [
         {"start": {"params": _EXAMPLE_PARAMS_A}, "end": {"params": _EXAMPLE_PARAMS_B}, "frames": 8,
@@ -108,6 +113,7 @@ class FillRequest(_Request):
     min_confidence: float = Field(0.5, ge=0.0, le=1.0)
     version: int | None = Field(None, ge=1)
     as_job: bool = Field(False, description="run as a job even when small enough to answer at once")
+    refine: bool = Field(True, description=REFINE_REQUEST)
 
     model_config = ConfigDict(json_schema_extra={"examples": [
         {"targets": [_EXAMPLE_PARAMS_A, _EXAMPLE_PARAMS_B], "min_confidence": 0.5}]})
@@ -274,6 +280,8 @@ class RefineOut(_Out):
                                             "disagreement in [0, 1] intensity at which trust falls to 1/e)")
     holdout: RefineHoldoutOut | None = Field(description="held-out figures behind the choice; null when there "
                                                          "were none")
+    skippable: bool = Field(False, description="true: a request may send refine false and get the decoded frames "
+                                               "(faster), scored by a confidence fitted on decoded frames")
 
 
 class ModelOut(_Out):

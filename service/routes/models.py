@@ -16,7 +16,7 @@ from ..deps import ApiKeyDep, ModelCache, ModelName, Services, ServicesDep, note
 from ..errors import BadInput
 from ..imaging import decode_base64, open_image, to_model_array
 from ..registry import ModelVersion
-from ..schemas import (BetweenOut, BetweenRequest, DeletedOut, EndRequest, FillOut, FillRequest, JobOut,
+from ..schemas import (REFINE_REQUEST, BetweenOut, BetweenRequest, DeletedOut, EndRequest, FillOut, FillRequest, JobOut,
                        ModelListOut, ModelOut)
 from .common import Answer, end_codes, errors, frame_data, media, respond
 
@@ -53,7 +53,7 @@ def _endpoint(end, engine) -> Endpoint:
 
 
 def _between(services: Services, name: str, version: int | None, start, end, frames: int, route: str,
-             min_confidence: float) -> Answer:
+             min_confidence: float, refine: bool = True) -> Answer:
     """The whole answer on the inference pool, in one hop from the event loop (measured: each
     extra hop through a worker thread added about a millisecond under load on 2 cores): the model
     version, both ends, the frames and their PNGs."""
@@ -64,17 +64,17 @@ def _between(services: Services, name: str, version: int | None, start, end, fra
     start, end = _resolve_end(start, "start", space, limit), _resolve_end(end, "end", space, limit)
     engine = cache.engine(entry)
     ans = engine.between(_endpoint(start, engine), _endpoint(end, engine), frames=frames, route=route,
-                         min_confidence=min_confidence)
+                         min_confidence=min_confidence, refine=refine)
     return Answer(kind="between", model=entry.name, version=entry.version,
                   frames=frame_data(ans.frames, codes=ans.codes), route=ans.route, start_params=ans.start_params,
                   end_params=ans.end_params, **end_codes(ans))
 
 
 def fill_chunk(cache: ModelCache, entry: ModelVersion, targets: Sequence[Mapping[str, float]],
-               min_confidence: float, offset: int = 0):
+               min_confidence: float, offset: int = 0, refine: bool = True):
     """Frames for targets[offset:offset+len]; runs on the inference pool."""
     engine = cache.engine(entry)
-    return frame_data(engine.fill(targets, min_confidence=min_confidence), targets, offset=offset)
+    return frame_data(engine.fill(targets, min_confidence=min_confidence, refine=refine), targets, offset=offset)
 
 
 def _frame_limit(services: Services, frames: int) -> None:
@@ -85,8 +85,9 @@ def _frame_limit(services: Services, frames: int) -> None:
 
 
 async def _answer_between(request: Request, services: Services, name: str, start, end, *, frames: int,
-                          route: str, min_confidence: float, version: int | None):
-    answer = await services.pool.run(_between, services, name, version, start, end, frames, route, min_confidence)
+                          route: str, min_confidence: float, version: int | None, refine: bool = True):
+    answer = await services.pool.run(_between, services, name, version, start, end, frames, route, min_confidence,
+                                     refine)
     services.metrics.frames(answer.model, len(answer.frames), answer.rejected)
     note(request, model=answer.model, version=answer.version, frames=len(answer.frames), rejected=answer.rejected)
     return respond(request, answer)
@@ -149,7 +150,7 @@ def delete_model_version(key: ApiKeyDep, name: ModelName, version: Annotated[int
 async def between(name: ModelName, body: BetweenRequest, request: Request, services: ServicesDep):
     _frame_limit(services, body.frames)
     return await _answer_between(request, services, name, body.start, body.end, frames=body.frames, route=body.route,
-                                 min_confidence=body.min_confidence, version=body.version)
+                                 min_confidence=body.min_confidence, version=body.version, refine=body.refine)
 
 
 _UPLOAD_EXAMPLE = {"start": "(PNG or JPEG file)", "end": "(PNG or JPEG file)", "frames": 8, "route": "geodesic",
@@ -167,7 +168,8 @@ async def between_upload(
         frames: Annotated[int, Form(ge=1, description="in-between frames (at most max_frames)")] = 8,
         route: Annotated[Literal["geodesic", "straight"], Form()] = "geodesic",
         min_confidence: Annotated[float, Form(ge=0.0, le=1.0, allow_inf_nan=False)] = 0.5,
-        version: Annotated[int | None, Form(ge=1)] = None):
+        version: Annotated[int | None, Form(ge=1)] = None,
+        refine: Annotated[bool, Form(description=REFINE_REQUEST)] = True):
     _frame_limit(services, frames)
     files = []
     for field, upload in (("start", start), ("end", end)):
@@ -176,7 +178,7 @@ async def between_upload(
             raise BadInput(f"{field}: the uploaded file is empty", field=field, code="invalid_image")
         files.append(data)
     return await _answer_between(request, services, name, files[0], files[1], frames=frames, route=route,
-                                 min_confidence=min_confidence, version=version)
+                                 min_confidence=min_confidence, version=version, refine=refine)
 
 
 @router.post("/models/{name}/fill", operation_id="fill", response_model=FillOut,
@@ -201,9 +203,9 @@ async def fill(name: ModelName, body: FillRequest, request: Request, services: S
         return entry
 
     entry = await run_in_threadpool(checked)
-    targets, min_conf = body.targets, body.min_confidence
+    targets, min_conf, refine = body.targets, body.min_confidence, body.refine
     if n <= s.max_fill_sync and not body.as_job:
-        frames = await services.pool.run(fill_chunk, services.cache, entry, targets, min_conf)
+        frames = await services.pool.run(fill_chunk, services.cache, entry, targets, min_conf, 0, refine)
         answer = Answer(kind="fill", model=entry.name, version=entry.version, frames=frames)
         services.metrics.frames(entry.name, len(frames), answer.rejected)
         note(request, model=entry.name, version=entry.version, frames=len(frames), rejected=answer.rejected)
@@ -215,7 +217,7 @@ async def fill(name: ModelName, body: FillRequest, request: Request, services: S
     def work(ctx) -> Answer:
         frames = []
         for lo in range(0, n, chunk):
-            frames += ctx.compute(fill_chunk, cache, entry, targets[lo:lo + chunk], min_conf, lo)
+            frames += ctx.compute(fill_chunk, cache, entry, targets[lo:lo + chunk], min_conf, lo, refine)
             ctx.progress(len(frames))
         answer = Answer(kind="fill", model=entry.name, version=entry.version, frames=frames)
         metrics.frames(entry.name, len(frames), answer.rejected)

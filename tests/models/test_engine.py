@@ -152,3 +152,60 @@ def test_older_bundles_with_four_signals_still_score(small_bundle):
     bundle.manifest["confidence"]["signals"] = ["cycle", "wobble"]
     with pytest.raises(ValueError, match="wobble"):
         Engine(bundle)
+
+
+def test_a_refining_model_keeps_a_confidence_for_its_decoded_frames(small_engine):
+    # fitted at training time only when the model refines: what refine=False requests are scored by
+    refine = small_engine.manifest["refine"]
+    assert ("decoded_confidence" in refine) == bool(refine["on"])
+    if refine["on"]:
+        from models.engine import FITTED_SIGNALS
+
+        assert refine["decoded_confidence"]["signals"] == list(FITTED_SIGNALS)
+        assert small_engine.manifest["metrics"]["confidence"]["decoded_frames"]["status"] == "fitted"
+
+
+@pytest.fixture(scope="module")
+def skippable(small_bundle):
+    """The small model forced to refine, with a confidence fitted on its decoded frames."""
+    from models.calibrate import calibrate_decoded
+    from models.confidence import ConfidenceModel
+    from models.engine import Engine
+
+    engine = Engine.load(small_bundle, refine=True)
+    before = engine.refine, engine.signal_names
+    held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
+    entry, report = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
+    assert report["status"] == "fitted" and entry["signals"] == ["cycle", "settings"]
+    assert (engine.refine, engine.signal_names) == before  # restored after fitting
+    engine.decoded_confidence = ConfidenceModel.from_dict(entry["model"])
+    engine.decoded_signal_names = tuple(entry["signals"])
+    return engine
+
+
+def test_refine_false_serves_the_decoded_frames_scored_by_their_own_confidence(skippable):
+    engine = skippable
+    fast = engine.between(P(30, 30), P(150, 60), frames=5, refine=False)
+    full = engine.between(P(30, 30), P(150, 60), frames=5)
+    assert np.allclose(fast.codes, full.codes)  # the same route
+    assert np.array_equal(np.stack([f.image for f in fast.frames]), engine.decode(fast.codes))
+    assert all(f.detail is None and set(f.signals) == {"cycle", "settings"} for f in fast.frames)
+    assert all(f.detail is not None for f in full.frames)  # refined by default
+    sig = np.array([[f.signals["cycle"], f.signals["settings"]] for f in fast.frames])
+    assert np.allclose([f.confidence for f in fast.frames], engine.decoded_confidence.predict(sig))
+    filled = engine.fill([{"lamp_azimuth": 95.0, "lamp_elevation": 35.0}], refine=False)
+    assert filled[0].detail is None and set(filled[0].signals) == {"cycle", "settings"}
+
+
+def test_refine_false_is_refused_when_no_decoded_frame_confidence_was_fitted(small_bundle):
+    from models.engine import Engine
+
+    engine = Engine.load(small_bundle, refine=True)
+    engine.decoded_confidence = None
+    if engine.confidence is None:
+        pytest.skip("the small model has no confidence")
+    with pytest.raises(ValueError, match="refine: this model version has no confidence"):
+        engine.between(P(30, 30), P(150, 60), frames=3, refine=False)
+    plain = Engine.load(small_bundle, refine=False)  # a model that does not refine: refine=False changes nothing
+    a, b = plain.between(P(30, 30), P(150, 60), frames=3), plain.between(P(30, 30), P(150, 60), frames=3, refine=False)
+    assert [f.confidence for f in a.frames] == [f.confidence for f in b.frames]

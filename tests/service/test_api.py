@@ -140,7 +140,7 @@ def test_list_and_describe_models(client, registry):
     assert d["metrics"] == registry.get("tile").metrics
     assert d["calibration"]["fitted"] is False
     # trained without a detail-transfer choice: it never refines
-    assert d["refine"] == {"on": False, "chosen": False, "config": None, "holdout": None}
+    assert d["refine"] == {"on": False, "chosen": False, "config": None, "holdout": None, "skippable": False}
     cal = client.get("/v1/models/tile-cal").json()["calibration"]
     assert cal["fitted"] is True and cal["tau"] == 0.9 and cal["signals"] == list(SIGNALS)
     assert cal["method"] in ("platt", "isotonic")
@@ -528,7 +528,7 @@ def refine_client(refine_registry):
 def test_describe_shows_whether_a_model_refines_and_its_held_out_figures(refine_client, refine_registry):
     _, entries = refine_registry
     none = refine_client.get("/v1/models/tile").json()["refine"]
-    assert none == {"on": False, "chosen": False, "config": None, "holdout": None}
+    assert none == {"on": False, "chosen": False, "config": None, "holdout": None, "skippable": False}
     for name, on in (("tile-off", False), ("tile-fine", True)):
         got = refine_client.get(f"/v1/models/{name}").json()["refine"]
         want = entries[name]
@@ -575,3 +575,59 @@ def test_a_model_that_does_not_refine_gives_null_detail(refine_client, name):
                            headers={"Accept": "application/zip"})
     with zipfile.ZipFile(io.BytesIO(r.content)) as zf:
         assert [f["detail"] for f in json.loads(zf.read("manifest.json"))["frames"]] == [None, None]
+
+
+@pytest.fixture(scope="module")
+def skip_client(tmp_path_factory, small_bundle):
+    """The calibrated small model published twice with detail transfer forced on: "cal" without a
+    confidence for decoded frames (bundles trained before it), "cal-fast" with one."""
+    from models.calibrate import calibrate_decoded
+
+    reg = Registry.open(tmp_path_factory.mktemp("skip-registry"))
+    engine = Engine.load(small_bundle, refine=True)
+    held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
+    decoded, _ = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
+    assert decoded is not None
+
+    def publish(folder, extra):
+        shutil.copytree(small_bundle, folder, dirs_exist_ok=True)
+        manifest = json.loads((folder / "manifest.json").read_text())
+        manifest["refine"] = {**(manifest.get("refine") or {}), "on": True, **extra}
+        (folder / "manifest.json").write_text(json.dumps(manifest))
+
+    reg.publish("cal", lambda f: publish(f, {}))
+    reg.publish("cal-fast", lambda f: publish(f, {"decoded_confidence": decoded}))
+    with TestClient(create_app(Settings(registry=reg.root, **LIMITS))) as c:
+        yield c, reg
+
+
+def test_refine_false_answers_decoded_frames_with_their_own_confidence(skip_client):
+    client, reg = skip_client
+    assert client.get("/v1/models/cal-fast").json()["refine"]["skippable"] is True
+    assert client.get("/v1/models/cal").json()["refine"]["skippable"] is False
+    body = between_body(frames=4)
+    fast = client.post("/v1/models/cal-fast/between", json={**body, "refine": False})
+    assert fast.status_code == 200, fast.text
+    full = client.post("/v1/models/cal-fast/between", json=body).json()
+    plain = Engine.load(reg.get("cal-fast").path, refine=False)
+    ends = Endpoint(params=body["start"]["params"]), Endpoint(params=body["end"]["params"])
+    want = Engine.load(reg.get("cal-fast").path).between(*ends, frames=4, refine=False)
+    for got, ref, dec in zip(fast.json()["frames"], want.frames, plain.between(*ends, frames=4).frames):
+        assert got["detail"] is None and got["confidence"] == pytest.approx(ref.confidence, abs=1e-9)
+        assert np.abs(decode_frame(got["image"]).astype(int) - np.round(dec.image[..., 0] * 255)).max() <= 1
+    assert all(f["detail"] is not None for f in full["frames"])  # the default still refines
+    targets = {"targets": [{"lamp_azimuth": 100.0, "lamp_elevation": 40.0}], "refine": False}
+    filled = client.post("/v1/models/cal-fast/fill", json=targets).json()
+    assert filled["frames"][0]["detail"] is None and filled["frames"][0]["confidence"] is not None
+
+
+def test_refine_false_without_a_decoded_frame_confidence_is_a_422(skip_client):
+    client, reg = skip_client
+    before = reg.generation()
+    r = client.post("/v1/models/cal/between", json={**between_body(frames=2), "refine": False})
+    assert r.status_code == 422
+    assert "no confidence fitted on frames without detail transfer" in r.json()["error"]["message"]
+    assert client.post("/v1/models/cal/between", json=between_body(frames=2)).status_code == 200
+    r = client.post("/v1/models/cal/between", json={**between_body(frames=2), "refine": "sometimes"})
+    assert r.status_code == 422 and r.json()["error"]["field"] == "refine"
+    assert reg.generation() == before

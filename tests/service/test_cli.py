@@ -164,6 +164,10 @@ def test_between_manifest_carries_each_frames_detail(detail_registry, tmp_path):
             assert [f["detail"] for f in frames] == pytest.approx(want, abs=1e-9)
         else:
             assert [f["detail"] for f in frames] == want == [None, None, None]
+    out = tmp_path / "fine-no-refine"  # detail transfer skipped on request: the decoded frames
+    assert main(["--registry", root, "between", "fine", *BETWEEN, "--frames", "3", "--out", str(out),
+                 "--no-refine"]) == 0
+    assert [f["detail"] for f in json.loads((out / "manifest.json").read_text())["frames"]] == [None, None, None]
 
 
 def test_models_says_whether_each_model_refines(detail_registry, capsys):
@@ -220,3 +224,9 @@ def test_fill_reports_detail_locally_and_through_the_service(detail_registry, tm
     assert all(isinstance(v, float) and 0.0 <= v <= 1.0 for v in got["fine", "local"])
     assert got["fine", "remote"] == pytest.approx(got["fine", "local"], abs=1e-9)
     assert got["plain", "local"] == got["plain", "remote"] == [None, None]
+    for where, extra in (("local", []), ("remote", ["--url", "http://geotween.test"])):  # refinement skipped
+        out = tmp_path / f"fine-{where}-no-refine"
+        with TestClient(create_app(Settings(registry=root))) as app:
+            assert main(["--registry", root, "fill", "fine", str(targets), "--out", str(out), "--no-refine",
+                         *extra]) == 0
+        assert [f["detail"] for f in json.loads((out / "report.json").read_text())["frames"]] == [None, None]

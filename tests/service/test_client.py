@@ -108,7 +108,7 @@ def test_between_encodes_every_kind_of_end(client, fake, tmp_path):
     for start, end in (({"lamp_azimuth": 5, "lamp_elevation": 30}, path), (arr, Image.fromarray(GRAY))):
         result = client.between("tile", start, end, frames=3, route="straight", min_confidence=0.25)
         body = json.loads(fake.requests[-1].content)
-        assert (body["frames"], body["route"], body["min_confidence"]) == (3, "straight", 0.25)
+        assert (body["frames"], body["route"], body["min_confidence"], body["refine"]) == (3, "straight", 0.25, True)
         assert "version" not in body
         for side, given in (("start", start), ("end", end)):
             if isinstance(given, dict):
@@ -124,6 +124,8 @@ def test_between_encodes_every_kind_of_end(client, fake, tmp_path):
         assert np.array_equal(np.asarray(f.pil()), GRAY)
         assert (f.confidence, f.accepted, f.params["lamp_azimuth"]) == (0.8, True, 10.0)
         assert [g.detail for g in result.frames] == [0.125, None, 0.375]
+    client.between("tile", {"lamp_azimuth": 5, "lamp_elevation": 30}, path, refine=False)
+    assert json.loads(fake.requests[-1].content)["refine"] is False
 
 
 def test_model_exposes_the_refine_choice(client):
