@@ -4,7 +4,8 @@
 
 BUNDLE_DIR is a trained bundle (bench/quality.py leaves one in its --out folder). The bundle is
 published into a temporary registry, `geotween serve` is started on 127.0.0.1, and:
-- one client sends geodesic requests of 1, 8, 16 and 64 frames (settings ends): p50 and p99;
+- one client sends geodesic requests of 1, 8, 16 and 64 frames (settings ends): p50 and p99, and
+  16 frames with refine false when the model refines and may skip it;
 - 1, 4 and 8 clients in parallel, 16 frames each, for --seconds: frames per second and errors;
 - the bare limit, in this process: engine.between + PNG encoding of 16 frames, no HTTP.
 The service has no micro-batching: each request is decoded as one batch on the inference pool.
@@ -29,10 +30,10 @@ import numpy as np
 from common import ROOT, set_threads
 
 
-def _ends(rng, frames: int = 16) -> dict:
+def _ends(rng, frames: int = 16, **extra) -> dict:
     a = {"lamp_azimuth": float(rng.uniform(0, 360)), "lamp_elevation": float(rng.uniform(20, 70))}
     b = {"lamp_azimuth": float(rng.uniform(0, 360)), "lamp_elevation": float(rng.uniform(20, 70))}
-    return {"start": {"params": a}, "end": {"params": b}, "frames": frames}
+    return {"start": {"params": a}, "end": {"params": b}, "frames": frames, **extra}
 
 
 def bare_limit(bundle: Path, n: int = 40) -> float:
@@ -98,15 +99,18 @@ def measure(bundle: Path, *, port: int = 8765, requests: int = 100, seconds: flo
         with httpx.Client(base_url=url, timeout=30) as c:
             for _ in range(5):  # warm-up: model load, graph build
                 c.post("/v1/models/demo/between", json=_ends(rng)).raise_for_status()
-            for frames in frame_counts:
+            runs = [(str(frames), frames, {}) for frames in frame_counts]
+            if c.get("/v1/models/demo").json()["refine"].get("skippable"):
+                runs.append(("16 without detail transfer", 16, {"refine": False}))
+            for label, frames, extra in runs:
                 lat = []
                 for _ in range(requests):
-                    body = _ends(rng, frames)
+                    body = _ends(rng, frames, **extra)
                     t = time.perf_counter()
                     c.post("/v1/models/demo/between", json=body).raise_for_status()
                     lat.append((time.perf_counter() - t) * 1e3)
-                out["latency"][str(frames)] = {"p50_ms": round(float(np.median(lat)), 2),
-                                               "p99_ms": round(float(np.percentile(lat, 99)), 2)}
+                out["latency"][label] = {"p50_ms": round(float(np.median(lat)), 2),
+                                         "p99_ms": round(float(np.percentile(lat, 99)), 2)}
         for n_clients in clients:
             frames, errors, stop = [0], [0], time.time() + seconds
             lock = threading.Lock()

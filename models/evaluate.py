@@ -5,8 +5,8 @@ optical-flow warping of both ends, `models.flow.tween`), the straight route betw
 codes, the geodesic route, and the model's own ceiling (decode(encode(true frame))), which no
 decoded route can beat. Routes are scored as served: when the model refines its frames with
 detail from real bank images (`models.refine`), the report also carries the decoded geodesic
-frames before refinement ("geodesic_decoded"), and refined frames may exceed the ceiling. Ends are
-the truth set's end images.
+frames before refinement ("geodesic_decoded", with the confidence a refine=False request gets when
+the model has one), and refined frames may exceed the ceiling. Ends are the truth set's end images.
 """
 from __future__ import annotations
 
@@ -68,7 +68,7 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
     methods = METHODS + (("geodesic_decoded",) if engine.refine is not None else ())
     got = {m: {"psnr": [], "ssim": []} for m in methods}
     pacing = {"straight": [], "geodesic": []}
-    conf = {"straight": ([], []), "geodesic": ([], [])}
+    conf = {"straight": ([], []), "geodesic": ([], []), "geodesic_decoded": ([], [])}
     rows, mapped = [], []
     for pair in pairs:
         truth, t = pair["truth"], pair["t"]
@@ -87,20 +87,26 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
             if route == "geodesic" and len(mapped) < sheet_pairs:
                 mapped.append(ans)
             if route == "geodesic" and "geodesic_decoded" in methods:
+                if engine.decoded_confidence is not None:  # served as a refine=False request is
+                    plain = engine.between(Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"]),
+                                           frames=len(t), min_confidence=min_confidence, refine=False)
+                    conf["geodesic_decoded"][0].extend(f.confidence for f in plain.frames)
                 outs["geodesic_decoded"] = engine.decode(ans.codes)
         for m in methods:
             got[m]["psnr"].append(psnr_batch(outs[m], truth))
             got[m]["ssim"].append(ssim_batch(outs[m], truth))
-        for route in ("straight", "geodesic"):
-            conf[route][1].extend(got[route]["ssim"][-1] >= tau)
+        for route in ("straight", "geodesic", "geodesic_decoded"):
+            if route in methods:
+                conf[route][1].extend(got[route]["ssim"][-1] >= tau)
         if len(rows) < sheet_pairs:
             rows.append((truth, outs))
     report: dict = {"pairs": len(pairs), "frames_per_pair": int(len(pairs[0]["t"])), "tau": tau,
                     "min_confidence": min_confidence, "methods": {}}
     for m in methods:
         report["methods"][m] = _summary(np.concatenate(got[m]["psnr"]), np.concatenate(got[m]["ssim"]))
-    for route in ("straight", "geodesic"):
-        report["methods"][route]["pacing_error"] = round(float(np.mean(pacing[route])), 4)
+    for route in ("straight", "geodesic", "geodesic_decoded"):
+        if route in pacing:
+            report["methods"][route]["pacing_error"] = round(float(np.mean(pacing[route])), 4)
         prob, faithful = np.asarray(conf[route][0], dtype=float), np.asarray(conf[route][1], dtype=float)
         if len(prob):
             report["methods"][route]["confidence"] = confidence_summary(prob, faithful, min_confidence)
