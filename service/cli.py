@@ -231,10 +231,11 @@ def cmd_demo(args) -> int:
     (out / "report.json").write_text(json.dumps(report, indent=1))
     print(format_table(report))
     example = out / "between"
-    args_between = argparse.Namespace(name=entry.name, version=entry.version, registry=args.registry,
-                                      start="lamp_azimuth=300,lamp_elevation=30", end="lamp_azimuth=60,lamp_elevation=60",
-                                      frames=8, out=str(example), route="geodesic", min_confidence=0.5,
-                                      keep_rejected=True, strict=False)
+    # through the parser, so the example keeps every option `between` has, with its default
+    args_between = build_parser().parse_args(
+        ["between", entry.name, "lamp_azimuth=300,lamp_elevation=30", "lamp_azimuth=60,lamp_elevation=60",
+         "--frames", "8", "--out", str(example), "--version", str(entry.version), "--keep-rejected"])
+    args_between.registry = args.registry
     cmd_between(args_between)
     print(f"report: {out / 'report.json'}, contact sheet: {out / 'contact_sheet.png'}, frames: {example}")
     print("frames are synthesized by a learned model, not captured")

@@ -230,3 +230,14 @@ def test_fill_reports_detail_locally_and_through_the_service(detail_registry, tm
             assert main(["--registry", root, "fill", "fine", str(targets), "--out", str(out), "--no-refine",
                          *extra]) == 0
         assert [f["detail"] for f in json.loads((out / "report.json").read_text())["frames"]] == [None, None]
+
+
+def test_demo_runs_end_to_end_on_a_short_training(tmp_path, capsys):
+    # the README's demo command, with a few training steps: scene, training, eval, example frames
+    out = tmp_path / "demo"
+    assert main(["--registry", str(tmp_path / "reg"), "demo", "--steps", "4", "--out", str(out)]) == 0
+    said = capsys.readouterr().out
+    assert "registered relief-tile@1" in said and "geodesic" in said and "not captured" in said
+    manifest = json.loads((out / "between" / "manifest.json").read_text())
+    assert len(manifest["frames"]) == 8
+    assert (out / "report.json").is_file() and (out / "contact_sheet.png").is_file()
