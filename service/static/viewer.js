@@ -12,6 +12,7 @@
     version: null,     // the version chosen (null: latest)
     bank: null,        // GET /v1/models/{name}/map answer
     answer: null,      // last between answer
+    loads: 0,          // model choices made so far (only the latest one's answers are used)
     route: null,       // map points of the last route: {start, end, frames: [...]}
     current: 0,        // frame shown in playback (0-based)
     timer: null,
@@ -136,7 +137,9 @@
     problem("");
     stopPlayback();
     say("Loading " + name + "...");
+    const ticket = ++state.loads;  // a later choice supersedes this one: its late answers are dropped
     const detail = await getJSON("v1/models/" + encodeURIComponent(name) + (version ? "?version=" + version : ""));
+    if (ticket !== state.loads) return;
     const sameSpace = state.model && state.model.name === detail.name &&
       JSON.stringify(state.model.parameters) === JSON.stringify(detail.parameters);
     state.model = detail;
@@ -145,7 +148,9 @@
     showInfo(detail);
     if (!sameSpace) buildEnds(detail.parameters);
     clearResults();
-    state.bank = await getJSON(modelPath("/map") + versionQuery());
+    const bank = await getJSON(modelPath("/map") + versionQuery());
+    if (ticket !== state.loads) return;
+    state.bank = bank;
     drawMap();
     say(detail.name + " version " + detail.version + " is ready: choose the two ends, then make frames.");
   }
@@ -190,6 +195,10 @@
     add(main, "confidence", c.fitted ? "calibrated (" + (c.method || "?") + "), tau " + fmt(c.tau, 2) : "not calibrated");
     if (c.fitted) add(main, "ECE / AUROC", fmt(c.ece, 3) + " / " + fmt(c.auroc, 3));
     add(main, "detail transfer", refineText(detail.refine));
+    // a refining model with a confidence for its decoded frames may be asked to skip refinement
+    const skippable = Boolean(detail.refine && detail.refine.on && detail.refine.skippable);
+    $("refine-field").hidden = !skippable;
+    if (!skippable) $("skip-refine").checked = false;
     for (const [k, v] of Object.entries(m)) {
       if (typeof v === "number" && k !== "holdout_psnr" && k !== "holdout_ssim") {
         add(more, k.replace(/_/g, " "), Number.isInteger(v) ? String(v) : fmt(v, 3));
@@ -334,6 +343,7 @@
       min_confidence: Number($("min-confidence").value),
     };
     if (state.version) body.version = state.version;
+    if (!$("refine-field").hidden && $("skip-refine").checked) body.refine = false;
     return body;
   }
 

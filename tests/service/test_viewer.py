@@ -97,12 +97,32 @@ def test_ci_installs_chromium_before_the_readme_test_command():
 
 
 # -- a real browser against a live server ---------------------------------------------------------
+def skippable_copy(src: Path, folder: Path) -> None:
+    """The small model with detail transfer forced on and a confidence for its decoded frames, so
+    a request may skip refinement."""
+    import json
+
+    import numpy as np
+
+    from models.calibrate import calibrate_decoded
+    from models.engine import Engine
+
+    shutil.copytree(src, folder, dirs_exist_ok=True)
+    engine = Engine.load(src, refine=True)
+    held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
+    decoded, _ = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
+    manifest = json.loads((folder / "manifest.json").read_text())
+    manifest["refine"] = {**(manifest.get("refine") or {}), "on": True, "decoded_confidence": decoded}
+    (folder / "manifest.json").write_text(json.dumps(manifest))
+
+
 @pytest.fixture(scope="module")
 def live(tmp_path_factory, service_bundle, small_bundle):
     root = tmp_path_factory.mktemp("viewer-registry")
     reg = Registry.open(root)
     reg.publish("tile", lambda f: shutil.copytree(service_bundle, f, dirs_exist_ok=True))
     reg.publish("relief-tile", lambda f: shutil.copytree(small_bundle, f, dirs_exist_ok=True))
+    reg.publish("fast-tile", lambda f: skippable_copy(small_bundle, f))
     port = free_port()
     argv = local_argv(dockerfile_cmd(), port)
     argv.insert(argv.index("serve"), "--threads")
@@ -169,7 +189,7 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
     try:
         page.goto(live["url"] + "/")
         expect(page.locator("#notice")).to_contain_text("Synthesized, not captured")
-        expect(page.locator("#model option")).to_have_count(2, timeout=WAIT_MS)
+        expect(page.locator("#model option")).to_have_count(3, timeout=WAIT_MS)
 
         # pick the demo model: its parameter spec, metrics and bank map appear
         page.select_option("#model", "relief-tile")
@@ -287,6 +307,22 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
         assert third.value.status == 200
         assert third.value.request.post_data_json["start"]["image"].startswith("data:image/png;base64,")
         expect(page.locator("#status")).to_contain_text("6 frames on the geodesic route")
+
+        # a model that refines and may skip it offers the choice; the demo model above did not
+        expect(page.locator("#refine-field")).to_be_hidden()
+        page.select_option("#model", "fast-tile")
+        expect(page.locator("#status")).to_contain_text("fast-tile version 1 is ready", timeout=WAIT_MS)
+        expect(page.locator("#refine-field")).to_be_visible()
+        for skip in (True, False):
+            page.locator("#skip-refine").set_checked(skip)
+            with page.expect_response(lambda r: r.request.method == "POST"
+                                      and r.url.endswith("/v1/models/fast-tile/between")) as fast:
+                page.click("#go")
+            assert fast.value.status == 200
+            assert fast.value.request.post_data_json.get("refine", True) is (not skip)
+            details = [f["detail"] for f in fast.value.json()["frames"]]
+            assert all(d is None for d in details) if skip else all(d is not None for d in details)
+            expect(page.locator("#strip li .caption .detail")).to_have_count(0 if skip else len(details))
 
         # a refused request shows the service's message, not a blank page
         page.fill("#frames", "500")
