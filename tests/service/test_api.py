@@ -5,6 +5,7 @@ import json
 import logging
 import shutil
 import struct
+import time
 import zipfile
 import zlib
 from pathlib import Path
@@ -619,6 +620,19 @@ def test_refine_false_answers_decoded_frames_with_their_own_confidence(skip_clie
     targets = {"targets": [{"lamp_azimuth": 100.0, "lamp_elevation": 40.0}], "refine": False}
     filled = client.post("/v1/models/cal-fast/fill", json=targets).json()
     assert filled["frames"][0]["detail"] is None and filled["frames"][0]["confidence"] is not None
+    # a fill large enough to run as a job skips refinement too
+    many = {"targets": [{"lamp_azimuth": float(a), "lamp_elevation": 40.0} for a in range(0, 360, 60)],
+            "refine": False}
+    job = client.post("/v1/models/cal-fast/fill", json=many)
+    assert job.status_code == 202
+    for _ in range(600):
+        state = client.get(f"/v1/jobs/{job.json()['id']}").json()["state"]
+        if state not in ("queued", "running"):
+            break
+        time.sleep(0.05)
+    assert state == "done"
+    frames = client.get(f"/v1/jobs/{job.json()['id']}/result").json()["frames"]
+    assert len(frames) == 6 and all(f["detail"] is None and f["confidence"] is not None for f in frames)
 
 
 def test_refine_false_without_a_decoded_frame_confidence_is_a_422(skip_client):
