@@ -209,3 +209,33 @@ def test_refine_false_is_refused_when_no_decoded_frame_confidence_was_fitted(sma
     plain = Engine.load(small_bundle, refine=False)  # a model that does not refine: refine=False changes nothing
     a, b = plain.between(P(30, 30), P(150, 60), frames=3), plain.between(P(30, 30), P(150, 60), frames=3, refine=False)
     assert [f.confidence for f in a.frames] == [f.confidence for f in b.frames]
+
+
+def test_training_a_refining_model_stores_both_confidences(small_scene, tmp_path, monkeypatch):
+    # the small model does not win with refinement on its own; force the choice on to see what
+    # training then stores: the confidence of refined frames and the one of decoded frames
+    from conftest import SMALL_TRAIN
+
+    from models import calibrate
+    from models.engine import REFINED_SIGNALS, Engine
+    from models.pipeline import train_bundle
+    from models.refine import RefineConfig
+    from models.train import TrainConfig
+
+    real = calibrate.choose_refine
+
+    def forced(engine, *args, **kw):
+        entry = real(engine, *args, **kw)
+        entry["on"] = True
+        engine.refine, engine.signal_names = RefineConfig.from_dict(entry["config"]), REFINED_SIGNALS
+        return entry
+
+    monkeypatch.setattr(calibrate, "choose_refine", forced)
+    manifest = train_bundle(small_scene, tmp_path, name="forced", train_config=TrainConfig(**SMALL_TRAIN),
+                            progress=None)
+    assert manifest["confidence"]["signals"] == list(REFINED_SIGNALS)
+    assert manifest["refine"]["decoded_confidence"]["signals"] == ["cycle", "settings"]
+    engine = Engine.load(tmp_path)
+    assert engine.refine is not None and engine.decoded_confidence is not None
+    fast = engine.between(P(30, 30), P(150, 60), frames=3, refine=False)
+    assert all(f.detail is None and f.confidence is not None for f in fast.frames)
