@@ -111,8 +111,9 @@ def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np
 
 def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
                        span: float = 6.0, tolerance: float = 0.15, max_triplets: int = 400,
-                       seed: int = 0) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Signals (N, len(engine.signal_names)), SSIM (N,) against the truth, and each row's kind."""
+                       seed: int = 0, refine: bool = True) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """Signals (N, len(engine.scoring(refine)[0])), SSIM (N,) against the truth, and each row's
+    kind, for the frames as a request with `refine` is served."""
     s, m, t, a = bracketed(engine, holdout_params, span=span, tolerance=tolerance, max_triplets=max_triplets,
                            seed=seed)
     codes, intended, truth, kinds = [], [], [], []
@@ -127,18 +128,19 @@ def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_image
     truth += list(range(len(holdout_params)))
     kinds += ["fill"] * len(holdout_params)
     codes = np.asarray(codes)
-    images, detail = engine.render(codes)  # as served: refined when the model refines
-    sig = engine.signals(codes, images, np.asarray(intended), detail=detail)
+    images, detail = engine.render(codes, refine)  # as served: refined when the model refines
+    sig = engine.signals(codes, images, np.asarray(intended), detail=detail, names=engine.scoring(refine)[0])
     ssim = ssim_batch(images, holdout_images[np.asarray(truth)])
     return sig, ssim, kinds
 
 
 def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
-                     tau: float = DEFAULT_TAU, seed: int = 0) -> tuple[dict, dict]:
-    """(confidence entry for the manifest, report) for an engine whose bundle has no confidence yet."""
+                     tau: float = DEFAULT_TAU, seed: int = 0, refine: bool = True) -> tuple[dict, dict]:
+    """(confidence entry for the manifest, report) for an engine whose bundle has no confidence yet,
+    fitted on its frames as a request with `refine` is served."""
     if not 0.0 < tau < 1.0:
         raise ValueError(f"tau: {tau!r} is outside (0, 1)")
-    sig, ssim, kinds = calibration_frames(engine, holdout_params, holdout_images, seed=seed)
+    sig, ssim, kinds = calibration_frames(engine, holdout_params, holdout_images, seed=seed, refine=refine)
     outcome = (ssim >= tau).astype(float)
     counts = {k: int(sum(1 for x in kinds if x == k)) for k in sorted(set(kinds))}
     base = {"tau": tau, "rows": int(len(outcome)), "rows_by_kind": counts,
@@ -146,7 +148,7 @@ def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images:
     if len(outcome) < 12 or outcome.sum() < 3 or (1 - outcome).sum() < 3:
         # too few frames of one kind to fit: no confidence rather than a made-up one
         return None, {**base, "status": "not fitted: too few faithful or unfaithful held-out frames"}
-    names = list(engine.signal_names)
+    names = list(engine.scoring(refine)[0])
     model, report = fit_confidence(sig, outcome, names=names, seed=seed)
     summary = {**base, "status": "fitted", "ece": report.get("ece"), "auroc": report.get("auroc"),
                "method": report.get("method"), "report": report}
@@ -158,12 +160,7 @@ def calibrate_decoded(engine: Engine, holdout_params: np.ndarray, holdout_images
     """(confidence entry, report) for a refining model's frames served without detail transfer
     (a request's refine: false): fitted the same way on the same held-out frames, decoded only,
     with the signals of a model that does not refine."""
-    kept = engine.refine, engine.signal_names
-    engine.refine, engine.signal_names = None, FITTED_SIGNALS
-    try:
-        return calibrate_engine(engine, holdout_params, holdout_images, tau=tau, seed=seed)
-    finally:
-        engine.refine, engine.signal_names = kept
+    return calibrate_engine(engine, holdout_params, holdout_images, tau=tau, seed=seed, refine=False)
 
 
 def fit_serving(result, scene, arrays: dict[str, np.ndarray], *, tau: float = DEFAULT_TAU) -> dict:

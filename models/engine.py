@@ -177,12 +177,20 @@ class Engine:
     def _refine_pool(self) -> ThreadPoolExecutor | None:
         return ThreadPoolExecutor(self.refine_threads, thread_name_prefix="refine") if self.refine_threads > 1 else None
 
-    def render(self, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
-        """The frames as served: decoded, then refined when this model refines; (images, detail)."""
+    def render(self, codes: np.ndarray, refine: bool = True) -> tuple[np.ndarray, np.ndarray | None]:
+        """The frames as served: decoded, then refined when this model refines and `refine` does
+        not turn it off; (images, detail share per frame or None)."""
         images = self.decode(codes)
-        if self.refine is None:
+        if self.refine is None or not refine:
             return images, None
         return self.refined(codes, images)
+
+    def scoring(self, refine: bool = True) -> tuple[tuple[str, ...], ConfidenceModel | None]:
+        """(signal names, confidence model) for frames rendered with `refine`: a refining model's
+        decoded frames have their own confidence (None until fitted, or for older bundles)."""
+        if refine or self.refine is None:
+            return self.signal_names, self.confidence
+        return self.decoded_signal_names, self.decoded_confidence
 
     @property
     def resolution(self) -> int:
@@ -319,16 +327,15 @@ class Engine:
                 "detail": lambda: 1.0 - (np.zeros(len(codes)) if detail is None else np.asarray(detail, float))}
         return np.stack([make[n]() for n in names], axis=1).reshape(len(codes), len(names))
 
-    def _frames(self, codes, t, intended, min_confidence, refine: bool = True) -> list[Frame]:
-        if refine or self.refine is None:
-            images, detail = self.render(codes)
-            names, model = self.signal_names, self.confidence
-        else:  # a refining model asked for its decoded frames: scored by the confidence fitted on those
-            if self.confidence is not None and self.decoded_confidence is None:
-                raise ValueError("refine: this model version has no confidence fitted on frames without "
-                                 "detail transfer; ask with refine true, or train a new version")
-            images, detail = self.decode(codes), None
-            names, model = self.decoded_signal_names, self.decoded_confidence
+    def frames_at(self, codes: np.ndarray, t: np.ndarray, intended: np.ndarray, min_confidence: float = 0.5,
+                  refine: bool = True) -> list[Frame]:
+        """Frames for `codes` (N, d) at route fractions `t`, each meant to show the settings
+        `intended` (N, P): rendered, read by the code-to-settings head, scored (as between does)."""
+        names, model = self.scoring(refine)
+        if model is None and self.confidence is not None:
+            raise ValueError("refine: this model version has no confidence fitted on frames without "
+                             "detail transfer; ask with refine true, or train a new version")
+        images, detail = self.render(codes, refine)
         shown = self.settings_of(codes)
         sig = self.signals(codes, images, intended, shown, detail, names=names)
         conf = None if model is None else model.predict(sig)
@@ -355,7 +362,7 @@ class Engine:
         line, nodes = self.route_line(zs, ze, route)
         codes, t = lroute.resample(line, frames, return_t=True)
         intended = self.space.lerp(ps, pe, t)
-        return Answer(route=route, frames=self._frames(codes, t, intended, min_confidence, refine),
+        return Answer(route=route, frames=self.frames_at(codes, t, intended, min_confidence, refine),
                       start_params=self.space.named(ps), end_params=self.space.named(pe),
                       codes=codes, path_nodes=nodes, ends=np.stack([zs, ze]))
 
@@ -368,7 +375,7 @@ class Engine:
             raise ValueError(f"min_confidence: {min_confidence!r} is outside [0, 1]")
         p = np.array([self.space.vector(tg) for tg in targets]).reshape(len(targets), len(self.space))
         codes = self.code_of_settings(p)
-        frames = self._frames(codes, np.zeros(len(p)), p, min_confidence, refine)
+        frames = self.frames_at(codes, np.zeros(len(p)), p, min_confidence, refine)
         for f in frames:
             f.t = 0.0
         return frames

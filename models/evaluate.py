@@ -87,11 +87,15 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
             if route == "geodesic" and len(mapped) < sheet_pairs:
                 mapped.append(ans)
             if route == "geodesic" and "geodesic_decoded" in methods:
-                if engine.decoded_confidence is not None:  # served as a refine=False request is
-                    plain = engine.between(Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"]),
-                                           frames=len(t), min_confidence=min_confidence, refine=False)
-                    conf["geodesic_decoded"][0].extend(f.confidence for f in plain.frames)
-                outs["geodesic_decoded"] = engine.decode(ans.codes)
+                if engine.decoded_confidence is not None:  # the same route, as a refine=False request serves it
+                    ends = np.stack([engine.space.vector(ans.start_params), engine.space.vector(ans.end_params)])
+                    at = np.array([f.t for f in ans.frames])
+                    plain = engine.frames_at(ans.codes, at, engine.space.lerp(ends[0], ends[1], at),
+                                             min_confidence, refine=False)
+                    conf["geodesic_decoded"][0].extend(f.confidence for f in plain)
+                    outs["geodesic_decoded"] = np.stack([f.image for f in plain])
+                else:
+                    outs["geodesic_decoded"] = engine.decode(ans.codes)
         for m in methods:
             got[m]["psnr"].append(psnr_batch(outs[m], truth))
             got[m]["ssim"].append(ssim_batch(outs[m], truth))

@@ -1,10 +1,12 @@
 """Detail transfer: real texture from the nearest bank images onto a decoded frame.
 
 The decoded frame gives structure (where things are, how they are lit); the bank's real images
-give detail the small decoder blurs away. For each frame, its `k` nearest bank images (by code, default 1)
-are warped onto it with dense optical flow (`models.flow`), and each is trusted per pixel only
-where, blurred to the decoded frame's own sharpness, it agrees with the decoded frame. Only their
-fine detail is carried over; the coarse picture (the lighting, the layout) stays the decoded one:
+give detail the small decoder blurs away. For each frame, its `k` nearest bank images (by code,
+default 1) are warped onto it with dense optical flow (`models.flow`), and each is trusted per
+pixel only where, blurred to the decoded frame's own sharpness, it agrees with the decoded frame,
+so where the lighting changed, or a view was never seen (disocclusions), the warped images
+disagree and the frame falls back to the decoded pixels. Only their fine detail is carried over;
+the coarse picture (the lighting, the layout) stays the decoded one:
 
     a_j(x) = exp(-(e_j(x) / tol)^2),   e_j = spread(|match(W_j) - D|)   (mean over channels)
     H(I)   = I - split(I)                                              (fine detail of I)
@@ -13,15 +15,15 @@ fine detail is carried over; the coarse picture (the lighting, the layout) stays
 with match, spread and split Gaussian blurs. Keeping the decoded frame's coarse picture matters
 where the light moves: a neighbour lit from a few degrees away agrees within tolerance but is a
 little brighter or darker everywhere (measured on the lamp scene at 64 px: swapping whole pixels
-lost up to 0.4 dB on single held-out frames, swapping detail only at most 0.14 dB). Comparing against the decoded frame itself, not a blurred
-copy, matters: flow can bend a neighbour lit from elsewhere until its blurred version looks like
-a blurred decoded frame, and then wrong shadows pass (measured on the lamp scene: the blurred-both
-test lost up to 6 dB on single frames, this one at most 0.1 dB, see bench/RESULTS.md).
+lost up to 0.4 dB on single held-out frames, swapping detail only at most 0.14 dB). Comparing
+against the decoded frame itself, not a blurred copy, matters: flow can bend a neighbour lit from
+elsewhere until its blurred version looks like a blurred decoded frame, and then wrong shadows
+pass (measured on the lamp scene: the blurred-both test lost up to 6 dB on single frames, this
+one at most 0.1 dB, see bench/RESULTS.md).
 
-so where the lighting changed, or a view was never seen (disocclusions), the warped images
-disagree and the frame falls back to the decoded pixels. Whether a model refines at all is
-chosen at training time on its held-out share (`models.calibrate.choose_refine`): it is on only
-where it wins, and the confidence is then fitted on refined frames.
+Whether a model refines at all is chosen at training time on its held-out share
+(`models.calibrate.choose_refine`): it is on only where it wins, and the confidence is then
+fitted on refined frames (with a second one on the decoded frames, for requests that skip it).
 """
 from __future__ import annotations
 

@@ -258,6 +258,5 @@ def evaluate_fit(model: Autoencoder, scene: Scene, train_idx: np.ndarray, hold_i
         for key, rows in (("collinearity_periodic", loop), ("collinearity_other", ~loop)):
             if rows.any():
                 r = np.flatnonzero(rows)
-                out[key] = round(float(losses.collinearity(z[trip.s[r]], z[trip.m[r]], z[trip.t[r]],
-                                                           a[torch.from_numpy(r)])), 6)
+                out[key] = round(float(losses.collinearity(z[trip.s[r]], z[trip.m[r]], z[trip.t[r]], a[r])), 6)
     return out

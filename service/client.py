@@ -125,7 +125,7 @@ class ModelDetail:
     metrics: dict
     calibration: dict
     # detail transfer: {"on", "chosen", "config", "holdout": {"decoded": {psnr, ssim}, "refined": {psnr,
-    # ssim, detail}} | None}; empty from a server that does not report it
+    # ssim, detail}} | None, "skippable"}; empty from a server that does not report it
     refine: dict = field(default_factory=dict)
 
     @property

@@ -218,7 +218,7 @@ _header = APIKeyHeader(name="X-API-Key", auto_error=False, description="an API k
 
 
 async def offered_key(bearer: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
-                header: Annotated[str | None, Depends(_header)]) -> str | None:
+                      header: Annotated[str | None, Depends(_header)]) -> str | None:
     """The key the caller sent, if any (Bearer first, then X-API-Key)."""
     return bearer.credentials if bearer is not None else header
 

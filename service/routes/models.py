@@ -16,8 +16,8 @@ from ..deps import ApiKeyDep, ModelCache, ModelName, Services, ServicesDep, note
 from ..errors import BadInput
 from ..imaging import decode_base64, open_image, to_model_array
 from ..registry import ModelVersion
-from ..schemas import (REFINE_REQUEST, BetweenOut, BetweenRequest, DeletedOut, EndRequest, FillOut, FillRequest, JobOut,
-                       ModelListOut, ModelOut)
+from ..schemas import (REFINE_REQUEST, BetweenOut, BetweenRequest, DeletedOut, EndRequest, FillOut, FillRequest,
+                       JobOut, ModelListOut, ModelOut)
 from .common import Answer, end_codes, errors, frame_data, media, respond
 
 router = APIRouter(prefix="/v1", tags=["models"])
