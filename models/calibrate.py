@@ -10,7 +10,8 @@ The same bracketed held-out samples first choose the geodesic's tube radius (`En
 candidate whose route frames match the held-out truth best (mean PSNR), so the confidence is then
 fitted on the routes the model will serve. They then decide whether the model refines its frames
 with detail from the nearest real images (`choose_refine`): on only when that wins on the held-out
-truth, and the confidence is fitted on the frames exactly as served, refined or not.
+truth, with the cheapest flow setting that does as well as the best, and the confidence is fitted
+on the frames exactly as served, refined or not.
 """
 from __future__ import annotations
 
@@ -28,6 +29,13 @@ DEFAULT_TAU = 0.90
 TUBES = (0.75, 1.0, 1.25, 1.5, 2.0)  # candidate tube radii, in bank spacings
 REFINE_MARGIN_DB = 0.2  # detail transfer must win by this much mean PSNR on the held-out truth
 REFINE_TOLERANCES = (0.05, 0.03)  # candidate trust tolerances (models.refine); the first is the default
+# candidate flow settings for detail transfer, cheapest first: "none" (bank images where they
+# stand) costs no flow estimate, which is most of the step's time, and on a scene where only the
+# light moves it does as well as DIS (bench/RESULTS.md); the first within REFINE_TIE_DB of the best
+# held-out PSNR, with SSIM within REFINE_TIE_SSIM of the best's, is taken
+REFINE_FLOWS = ("none", "dis")
+REFINE_TIE_DB = 0.05
+REFINE_TIE_SSIM = 0.001
 
 
 def bracketed(engine: Engine, holdout_params: np.ndarray, *, span: float = 6.0, tolerance: float = 0.15,
@@ -74,12 +82,31 @@ def choose_tube(engine: Engine, holdout_params: np.ndarray, holdout_images: np.n
     return best, {str(c): round(v, 3) for c, v in scores.items()}
 
 
+def pick_refine(tried: dict[str, dict[float, dict]]) -> tuple[str, float]:
+    """(flow, tolerance) from held-out scores {flow: {tolerance: {"psnr", "ssim"}}}, flows listed
+    cheapest first: the cheapest flow with a candidate within REFINE_TIE_DB mean PSNR and
+    REFINE_TIE_SSIM mean SSIM of the best candidate, and that flow's best tolerance (the smaller on
+    a tie)."""
+    scores = [r for by_tol in tried.values() for r in by_tol.values()]
+    if not scores:
+        raise ValueError("pick_refine: no candidates were scored")
+    top = max(scores, key=lambda r: r["psnr"])
+    for flow, by_tol in tried.items():  # the best candidate's own flow always qualifies
+        near = [k for k, r in by_tol.items()
+                if r["psnr"] >= top["psnr"] - REFINE_TIE_DB and r["ssim"] >= top["ssim"] - REFINE_TIE_SSIM]
+        if near:
+            return flow, max(near, key=lambda k: (by_tol[k]["psnr"], -k))
+    raise AssertionError("unreachable: the best candidate's flow qualifies")
+
+
 def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
-                  tolerances=REFINE_TOLERANCES, seed: int = 0) -> dict:
-    """Turn detail transfer on (engine.refine) when, with the best of the candidate tolerances, it
+                  tolerances=REFINE_TOLERANCES, flows=REFINE_FLOWS, seed: int = 0) -> dict:
+    """Turn detail transfer on (engine.refine) when, with the chosen flow setting and tolerance, it
     beats the decoded geodesic frames on the held-out truth by REFINE_MARGIN_DB mean PSNR without
-    lowering mean SSIM; returns the manifest entry
-    {"on", "config", "holdout": {"decoded": {...}, "refined": {...}, "by_tolerance": {...}}}."""
+    lowering mean SSIM. Every flow setting (`flows`, cheapest first) is tried with every tolerance;
+    the chosen one is the cheapest flow that comes within REFINE_TIE_DB / REFINE_TIE_SSIM of the
+    best candidate, with its best tolerance. Returns the manifest entry {"on", "config", "holdout":
+    {"decoded", "refined", "by_tolerance" (the chosen flow's), "by_flow": {flow: {tolerance: ...}}}}."""
     s, m, t, a = bracketed(engine, holdout_params, seed=seed)
     engine.refine = None
     entry = {"on": False, "config": RefineConfig(tolerance=float(tolerances[0])).to_dict(), "holdout": {}}
@@ -94,17 +121,21 @@ def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np
 
     decoded = engine.decode(codes)
     dec = scored(decoded)
-    tried = {}
-    for tol in map(float, tolerances):
-        cfg = RefineConfig(tolerance=tol)
-        refined, detail = engine.refined(codes, decoded, cfg)
-        tried[tol] = {**scored(refined), "detail": round(float(np.mean(detail)), 4)}
-    best = max(tried, key=lambda k: (tried[k]["psnr"], -k))
-    ref = tried[best]
-    entry.update(config=RefineConfig(tolerance=best).to_dict(),
-                 holdout={"decoded": dec, "refined": ref, "by_tolerance": {str(k): v for k, v in tried.items()}})
+    tried: dict[str, dict[float, dict]] = {}
+    for flow in flows:
+        tried[flow] = {}
+        for tol in map(float, tolerances):
+            refined, detail = engine.refined(codes, decoded, RefineConfig(tolerance=tol, flow=flow))
+            tried[flow][tol] = {**scored(refined), "detail": round(float(np.mean(detail)), 4)}
+    flow, best = pick_refine(tried)
+    cfg = RefineConfig(tolerance=best, flow=flow)
+    ref = tried[flow][best]
+    entry.update(config=cfg.to_dict(),
+                 holdout={"decoded": dec, "refined": ref,
+                          "by_tolerance": {str(k): v for k, v in tried[flow].items()},
+                          "by_flow": {f: {str(k): v for k, v in by_tol.items()} for f, by_tol in tried.items()}})
     entry["on"] = bool(ref["psnr"] >= dec["psnr"] + REFINE_MARGIN_DB and ref["ssim"] >= dec["ssim"])
-    engine.refine = RefineConfig(tolerance=best) if entry["on"] else None
+    engine.refine = cfg if entry["on"] else None
     engine.signal_names = REFINED_SIGNALS if entry["on"] else FITTED_SIGNALS  # the confidence follows
     return entry
 

@@ -2,7 +2,9 @@
 
 The decoded frame gives structure (where things are, how they are lit); the bank's real images
 give detail the small decoder blurs away. For each frame, its `k` nearest bank images (by code,
-default 1) are warped onto it with dense optical flow (`models.flow`), and each is trusted per
+default 1) are warped onto it with dense optical flow (`models.flow`), or taken where they stand
+when the model's flow setting is "none" (a fixed camera and subject, only the light moving: there
+is no motion to follow, and estimating it costs most of the step), and each is trusted per
 pixel only where, blurred to the decoded frame's own sharpness, it agrees with the decoded frame,
 so where the lighting changed, or a view was never seen (disocclusions), the warped images
 disagree and the frame falls back to the decoded pixels. Only their fine detail is carried over;
@@ -21,8 +23,9 @@ elsewhere until its blurred version looks like a blurred decoded frame, and then
 pass (measured on the lamp scene: the blurred-both test lost up to 6 dB on single frames, this
 one at most 0.1 dB, see bench/RESULTS.md).
 
-Whether a model refines at all is chosen at training time on its held-out share
-(`models.calibrate.choose_refine`): it is on only where it wins, and the confidence is then
+Whether a model refines at all, and with which flow and tolerance, is chosen at training time on
+its held-out share (`models.calibrate.choose_refine`): it is on only where it wins, the flow is the
+cheapest that does as well as the best, and the confidence is then
 fitted on refined frames (with a second one on the decoded frames, for requests that skip it).
 """
 from __future__ import annotations
@@ -36,6 +39,8 @@ import numpy as np
 
 from . import flow as lflow
 
+FLOWS = lflow.METHODS + ("none",)  # "none": each bank image is used where it stands, not warped
+
 
 @dataclass(frozen=True)
 class RefineConfig:
@@ -44,11 +49,11 @@ class RefineConfig:
     spread: float = 1.5      # px, Gaussian sigma over which a pixel's disagreement is pooled
     split: float = 1.5       # px, Gaussian sigma that separates fine detail from the coarse picture
     tolerance: float = 0.05  # disagreement (in [0, 1] intensity) at which trust falls to 1/e
-    flow: str = "dis"        # flow estimator (models.flow.METHODS): DIS measured as good as Farneback, 4x faster
+    flow: str = "dis"        # flow estimator (FLOWS): DIS measured as good as Farneback, 4x faster
 
     def __post_init__(self):
-        if self.flow not in lflow.METHODS:
-            raise ValueError(f"refine flow: {self.flow!r} is not allowed; expected one of {list(lflow.METHODS)}")
+        if self.flow not in FLOWS:
+            raise ValueError(f"refine flow: {self.flow!r} is not allowed; expected one of {list(FLOWS)}")
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -113,7 +118,7 @@ def refine(decoded: np.ndarray, refs: np.ndarray, cfg: RefineConfig = RefineConf
     """(N, H, W, C) decoded frames and (N, k, H, W, C) references -> refined frames and, per
     frame, the share of pixels taken from real images. With `pool`, the flows are estimated and
     the references warped on its threads (OpenCV releases the GIL); the rest is whole-batch array
-    work."""
+    work. With cfg.flow "none" the references are compared and blended where they stand."""
     decoded = np.asarray(decoded, dtype=np.float32)
     refs = np.asarray(refs, dtype=np.float32)
     if len(decoded) == 0:
@@ -124,9 +129,12 @@ def refine(decoded: np.ndarray, refs: np.ndarray, cfg: RefineConfig = RefineConf
         ref = refs[ij]
         return lflow.warp(ref, lflow.flow(decoded[ij[0]], ref, method=cfg.flow))
 
-    jobs = [(i, j) for i in range(n) for j in range(k)]
-    done = pool.map(warped, jobs) if pool is not None and len(jobs) > 1 else map(warped, jobs)
-    warp = np.stack(list(done)).reshape(refs.shape)                                  # (N, k, H, W, C)
+    if cfg.flow == "none":
+        warp = refs
+    else:
+        jobs = [(i, j) for i in range(n) for j in range(k)]
+        done = pool.map(warped, jobs) if pool is not None and len(jobs) > 1 else map(warped, jobs)
+        warp = np.stack(list(done)).reshape(refs.shape)                              # (N, k, H, W, C)
     err = np.abs(_blur(warp, cfg.match) - decoded[:, None]).mean(axis=-1, keepdims=True)
     trust = np.exp(-(_blur(err, cfg.spread) / cfg.tolerance) ** 2)                   # (N, k, H, W, 1)
     best = trust.max(axis=1)

@@ -277,7 +277,9 @@ class RefineOut(_Out):
                                      "refines")
     config: dict | None = Field(description="the detail transfer settings chosen, used when on (neighbours: images "
                                             "warped per frame; match, spread: blur sigmas in px; tolerance: "
-                                            "disagreement in [0, 1] intensity at which trust falls to 1/e)")
+                                            "disagreement in [0, 1] intensity at which trust falls to 1/e; "
+                                            "flow: how images are moved onto the frame, 'dis' or 'farneback' "
+                                            "optical flow, or 'none' where camera and subject stand still)")
     holdout: RefineHoldoutOut | None = Field(description="held-out figures behind the choice; null when there "
                                                          "were none")
     skippable: bool = Field(False, description="true: a request may send refine false and get the decoded frames "

@@ -237,3 +237,24 @@ def test_fit_confidence_rejects_bad_input():
         fit_confidence(x, np.r_[np.ones(48), np.zeros(2)])
     with pytest.raises(ValueError, match="2 names"):
         fit_confidence(x, y, names=["a", "b"])
+
+
+def test_detail_transfer_takes_the_cheapest_flow_that_does_as_well_as_the_best():
+    from models.calibrate import REFINE_TIE_DB, pick_refine
+
+    def scores(psnr, ssim):
+        return {"psnr": psnr, "ssim": ssim}
+
+    # "none" (listed first, the cheaper) within the tie margin of DIS: taken, with its better tolerance
+    tie = {"none": {0.05: scores(31.90, 0.9620), 0.03: scores(31.80, 0.9621)},
+           "dis": {0.05: scores(31.90 + REFINE_TIE_DB / 2, 0.9625), 0.03: scores(31.70, 0.9600)}}
+    assert pick_refine(tie) == ("none", 0.05)
+    # beyond the margin in PSNR, or in SSIM: the estimator that wins is taken
+    lost = {"none": {0.05: scores(23.84, 0.79)}, "dis": {0.05: scores(25.69, 0.906), 0.03: scores(25.70, 0.905)}}
+    assert pick_refine(lost) == ("dis", 0.03)
+    blurrier = {"none": {0.05: scores(31.99, 0.9500)}, "dis": {0.05: scores(32.00, 0.9600)}}
+    assert pick_refine(blurrier) == ("dis", 0.05)
+    # equal scores: the smaller tolerance, as before the flow choice existed
+    assert pick_refine({"dis": {0.05: scores(30.0, 0.9), 0.03: scores(30.0, 0.9)}}) == ("dis", 0.03)
+    with pytest.raises(ValueError, match="no candidates"):
+        pick_refine({"none": {}, "dis": {}})

@@ -102,6 +102,12 @@ def test_a_batch_refines_as_its_frames_do_one_by_one(photo_views):
         assert np.abs(one - out[i]).max() < 1e-6 and share == pytest.approx(detail[i], abs=1e-4)  # float32 sums in another order
 
 
+def photo_truth():
+    """The unblurred crops behind the photo_views frames."""
+    photo = skdata.coffee().astype(np.float32) / 255.0
+    return np.stack([photo[100 + 20 * i:164 + 20 * i, 200:264] for i in range(5)])
+
+
 @pytest.fixture(scope="module")
 def photo_views():
     # scikit-image's "coffee" photograph (ships inside the scikit-image wheel): 5 blurred 64 px
@@ -111,3 +117,35 @@ def photo_views():
     refs = np.stack([np.stack([photo[102 + 20 * i:166 + 20 * i, 203:267], photo[98 + 20 * i:162 + 20 * i, 198:262]])
                      for i in range(5)])
     return frames, refs
+
+
+def test_without_flow_the_references_are_blended_where_they_stand(photo_views, monkeypatch):
+    # "none" must equal the flow path fed an all-zero flow (bilinear sampling at whole pixels is the
+    # image itself), and must not call the estimator at all
+    frames, refs = photo_views
+    still, share = lrefine.refine(frames, refs, lrefine.RefineConfig(flow="none"))
+    monkeypatch.setattr(lrefine.lflow, "flow", lambda a, b, method="dis": np.zeros(a.shape[:2] + (2,), np.float32))
+    zero, zero_share = lrefine.refine(frames, refs, lrefine.RefineConfig(flow="dis"))
+    assert np.abs(still - zero).max() < 1e-6 and np.allclose(share, zero_share)
+    monkeypatch.setattr(lrefine.lflow, "flow", lambda *a, **k: pytest.fail("flow estimated with flow 'none'"))
+    lrefine.refine(frames, refs, lrefine.RefineConfig(flow="none"))
+
+
+def test_a_moving_view_needs_the_flow_and_a_still_one_does_not(photo_views):
+    # the photo crops' references are shifted by 2-3 px: taken where they stand their detail lands
+    # in the wrong place, warped it lands where it belongs; references that are the true view
+    # itself need no flow, and estimating one only adds its errors
+    frames, refs = photo_views
+    truth = photo_truth()
+    moved = {f: psnr_batch(lrefine.refine(frames, refs, lrefine.RefineConfig(flow=f))[0], truth).mean()
+             for f in ("none", "dis")}
+    assert moved["dis"] > moved["none"] + 3.0, moved
+    still_refs = np.stack([truth, truth], axis=1)
+    still = {f: psnr_batch(lrefine.refine(frames, still_refs, lrefine.RefineConfig(flow=f))[0], truth).mean()
+             for f in ("none", "dis")}
+    assert still["none"] >= still["dis"] and still["none"] > psnr_batch(frames, truth).mean() + 5.0, still
+
+
+def test_an_unknown_flow_setting_is_refused():
+    with pytest.raises(ValueError, match="refine flow: 'optical'.*none"):
+        lrefine.RefineConfig(flow="optical")

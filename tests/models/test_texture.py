@@ -2,6 +2,7 @@
 scikit-image wheel) seen through a window that pans and zooms; truth frames are exact crops."""
 import pytest
 
+from models.calibrate import REFINE_FLOWS, pick_refine
 from models.engine import Endpoint, Engine
 from models.evaluate import evaluate, format_table
 from models.photo import write_photo_scene
@@ -51,13 +52,19 @@ def test_the_held_out_choice_is_recorded_and_followed(photo_model):
     engine = Engine.load(bundle)
     chosen = engine.manifest["refine"]
     held = chosen["holdout"]
-    assert set(held) >= {"decoded", "refined", "by_tolerance"}
+    assert set(held) >= {"decoded", "refined", "by_tolerance", "by_flow"}
+    # every flow setting was scored, and the recorded choice is the rule's on those scores
+    assert list(held["by_flow"]) == list(REFINE_FLOWS)
+    scores = {f: {float(k): v for k, v in by_tol.items()} for f, by_tol in held["by_flow"].items()}
+    assert pick_refine(scores) == (chosen["config"]["flow"], chosen["config"]["tolerance"])
+    assert held["refined"] == held["by_flow"][chosen["config"]["flow"]][str(chosen["config"]["tolerance"])]
     wins = held["refined"]["psnr"] >= held["decoded"]["psnr"] + 0.2 and held["refined"]["ssim"] >= held["decoded"]["ssim"]
     assert chosen["on"] == wins and (engine.refine is not None) == wins
     ans = engine.between(Endpoint(params={"pan": 0.1, "zoom": 0.2}), Endpoint(params={"pan": 0.6, "zoom": 0.7}),
                          frames=4)
     if wins:
         assert engine.refine.tolerance == chosen["config"]["tolerance"]
+        assert engine.refine.flow == chosen["config"]["flow"]
         assert all(0.0 <= f.detail <= 1.0 for f in ans.frames)
     else:
         assert all(f.detail is None for f in ans.frames)
