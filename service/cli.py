@@ -87,6 +87,8 @@ def refine_line(manifest: dict) -> str:
     if not chosen["chosen"]:
         return "detail transfer off (no choice made at training time)"
     text = "detail transfer " + ("on" if chosen["on"] else "off")
+    if chosen["on"] and chosen["config"]:
+        text += f" (flow {chosen['config'].get('flow', 'farneback')})"
     if chosen["holdout"]:
         dec, ref = chosen["holdout"]["decoded"], chosen["holdout"]["refined"]
         text += (f"; held-out in-betweens PSNR {dec['psnr']:.2f} -> {ref['psnr']:.2f} dB, "

@@ -178,7 +178,8 @@ def test_models_says_whether_each_model_refines(detail_registry, capsys):
     assert said["bare"] == "detail transfer off (no choice made at training time)"
     for name, state in (("plain", "off"), ("fine", "on")):
         dec, ref = entries[name]["holdout"]["decoded"], entries[name]["holdout"]["refined"]
-        assert said[name].startswith(f"detail transfer {state}; "), said[name]
+        flow = f" (flow {entries[name]['config']['flow']})" if state == "on" else ""
+        assert said[name].startswith(f"detail transfer {state}{flow}; "), said[name]
         assert f"PSNR {dec['psnr']:.2f} -> {ref['psnr']:.2f} dB" in said[name]
         assert f"SSIM {dec['ssim']:.4f} -> {ref['ssim']:.4f}" in said[name]
 
