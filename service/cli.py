@@ -81,14 +81,14 @@ def cmd_train(args) -> int:
 def refine_line(manifest: dict) -> str:
     """Whether a model refines its frames with detail from real training images, and the held-out
     in-betweens behind that choice (decoded -> refined), from its bundle manifest."""
-    from models.refine import choice
+    from models.refine import RefineConfig, choice
 
     chosen = choice(manifest)
     if not chosen["chosen"]:
         return "detail transfer off (no choice made at training time)"
     text = "detail transfer " + ("on" if chosen["on"] else "off")
     if chosen["on"] and chosen["config"]:
-        text += f" (flow {chosen['config'].get('flow', 'farneback')})"
+        text += f" (flow {RefineConfig.from_dict(chosen['config']).flow})"
     if chosen["holdout"]:
         dec, ref = chosen["holdout"]["decoded"], chosen["holdout"]["refined"]
         text += (f"; held-out in-betweens PSNR {dec['psnr']:.2f} -> {ref['psnr']:.2f} dB, "

@@ -102,20 +102,23 @@ def test_a_batch_refines_as_its_frames_do_one_by_one(photo_views):
         assert np.abs(one - out[i]).max() < 1e-6 and share == pytest.approx(detail[i], abs=1e-4)  # float32 sums in another order
 
 
+def coffee_crops(dy: int = 0, dx: int = 0) -> np.ndarray:
+    """5 crops, 64 px, of scikit-image's "coffee" photograph (ships inside the scikit-image wheel),
+    20 px apart down the picture, shifted by (dy, dx) px."""
+    photo = skdata.coffee().astype(np.float32) / 255.0
+    return np.stack([photo[100 + dy + 20 * i:164 + dy + 20 * i, 200 + dx:264 + dx] for i in range(5)])
+
+
 def photo_truth():
     """The unblurred crops behind the photo_views frames."""
-    photo = skdata.coffee().astype(np.float32) / 255.0
-    return np.stack([photo[100 + 20 * i:164 + 20 * i, 200:264] for i in range(5)])
+    return coffee_crops()
 
 
 @pytest.fixture(scope="module")
 def photo_views():
-    # scikit-image's "coffee" photograph (ships inside the scikit-image wheel): 5 blurred 64 px
-    # crops, each with two real neighbours shifted by a few pixels
-    photo = skdata.coffee().astype(np.float32) / 255.0
-    frames = np.stack([blurred(photo[100 + 20 * i:164 + 20 * i, 200:264]) for i in range(5)])
-    refs = np.stack([np.stack([photo[102 + 20 * i:166 + 20 * i, 203:267], photo[98 + 20 * i:162 + 20 * i, 198:262]])
-                     for i in range(5)])
+    # 5 blurred coffee crops, each with two real neighbours shifted by a few pixels
+    frames = np.stack([blurred(c) for c in coffee_crops()])
+    refs = np.stack([coffee_crops(2, 3), coffee_crops(-2, -2)], axis=1)
     return frames, refs
 
 
