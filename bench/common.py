@@ -17,7 +17,7 @@ def scene_folders(kind: str = "demo", size: int = 64, pairs: int = 90) -> tuple[
     """(scene folder, truth folder) of one scene at `size` px with `pairs` truth pairs, written on
     first use into GEOTWEEN_BENCH_CACHE (default bench/.cache). "photo" is scikit-image's "coffee"
     photograph (it ships inside the scikit-image wheel) through the panning, zooming window."""
-    from models.render import write_demo
+    from geotween.models.render import write_demo
 
     if kind not in SCENES:
         raise ValueError(f"scene kind {kind!r}: expected one of {SCENES}")
@@ -27,7 +27,7 @@ def scene_folders(kind: str = "demo", size: int = 64, pairs: int = 90) -> tuple[
         if kind == "photo":
             from skimage.data import coffee
 
-            from models.photo import write_photo_scene
+            from geotween.models.photo import write_photo_scene
 
             write_photo_scene(coffee(), out, size=size, pairs=pairs)
         else:

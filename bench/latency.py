@@ -38,8 +38,8 @@ def _ends(rng, frames: int = 16, **extra) -> dict:
 
 def bare_limit(bundle: Path, n: int = 40) -> float:
     """Frames per second of engine.between(16) + PNG encoding in this process."""
-    from models.engine import Endpoint, Engine
-    from service.imaging import encode_png
+    from geotween.models.engine import Endpoint, Engine
+    from geotween.service.imaging import encode_png
 
     set_threads()
     engine = Engine.load(bundle)
@@ -61,14 +61,14 @@ def serving(bundles: dict[str, Path], port: int, env_extra: dict | None = None):
     yields (url, process)."""
     import httpx
 
-    from service.registry import Registry
+    from geotween.service.registry import Registry
 
     reg_root = Path(tempfile.mkdtemp(prefix="geotween-bench-reg-"))
     reg = Registry.open(reg_root)
     for name, path in bundles.items():
         reg.publish(name, lambda f, p=path: shutil.copytree(p, f, dirs_exist_ok=True))
     env = {**os.environ, "GEOTWEEN_REGISTRY": str(reg_root), "PYTHONPATH": str(ROOT), **(env_extra or {})}
-    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)],
+    proc = subprocess.Popen([sys.executable, "-m", "geotween.service.cli", "serve", "--host", "127.0.0.1", "--port", str(port)],
                             env=env, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     url = f"http://127.0.0.1:{port}"
     try:

@@ -34,8 +34,8 @@ def _status_kb(pid: int, key: str) -> int:
 
 def large_bank(bundle: Path, out: Path, size: int, seed: int = 0) -> Path:
     """A copy of `bundle` whose bank holds `size` samples on the demo model's manifold."""
-    from models.bundle import BANK, load_bundle
-    from models.engine import Engine
+    from geotween.models.bundle import BANK, load_bundle
+    from geotween.models.engine import Engine
 
     engine = Engine.load(bundle)
     b = engine.bundle

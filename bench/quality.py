@@ -24,11 +24,11 @@ from common import scene_folders, set_threads
 def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: float | None = None,
             out: Path | None = None, pairs: int = 90, scene_kind: str = "demo", latent_dim: int | None = None,
             w_ssim: float = 0.0) -> dict:
-    from models.engine import Endpoint, Engine
-    from models.evaluate import evaluate
-    from models.pipeline import train_bundle
-    from models.scene import load_scene
-    from models.train import TrainConfig, default_model_config
+    from geotween.models.engine import Endpoint, Engine
+    from geotween.models.evaluate import evaluate
+    from geotween.models.pipeline import train_bundle
+    from geotween.models.scene import load_scene
+    from geotween.models.train import TrainConfig, default_model_config
 
     scene_dir, truth_dir = scene_folders(scene_kind, resolution, pairs=pairs)
     scene = load_scene(scene_dir, resolution=resolution)
@@ -72,7 +72,7 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
 
 
 def main() -> None:
-    from models.evaluate import format_table
+    from geotween.models.evaluate import format_table
 
     from common import SCENES
 

@@ -37,7 +37,7 @@ def measure_bank(codes: np.ndarray, *, routes: int, check: int, seed: int = 1, l
     """Build time and route times between random pairs (local=K: each code to its K-th nearest)."""
     from scipy.sparse import csgraph
 
-    from models import graph as lgraph
+    from geotween.models import graph as lgraph
 
     t = time.perf_counter()
     g = lgraph.build_graph(codes, **build)
@@ -75,7 +75,7 @@ def main() -> None:
     out = {"synthetic": [measure_bank(manifold_codes(int(s)), routes=args.routes, check=args.check)
                          for s in args.sizes.split(",")]}
     if args.bundle:
-        from models.bundle import load_bundle
+        from geotween.models.bundle import load_bundle
 
         b = load_bundle(args.bundle)
         imgs = b.images()

@@ -18,7 +18,7 @@ from common import demo_folders, set_threads
 
 
 def run(scene, steps: int | None, **overrides) -> dict:
-    from models.train import TrainConfig, train
+    from geotween.models.train import TrainConfig, train
 
     cfg = TrainConfig(**overrides)
     if steps is not None:
@@ -32,9 +32,9 @@ def cylinder_floor(scene) -> float:
     import numpy as np
     import torch
 
-    from models import losses
-    from models.train import TrainConfig, split_holdout
-    from models.triplets import mine_triplets
+    from geotween.models import losses
+    from geotween.models.train import TrainConfig, split_holdout
+    from geotween.models.triplets import mine_triplets
 
     cfg, space = TrainConfig(), scene.space
     train_idx, _ = split_holdout(len(scene.params), cfg.holdout, cfg.seed)
@@ -61,7 +61,7 @@ def main() -> None:
     p.add_argument("--only-ablation", action="store_true", help="train only the no-collinearity model")
     args = p.parse_args()
     set_threads()
-    from models.scene import load_scene
+    from geotween.models.scene import load_scene
 
     scene_dir, _ = demo_folders(args.resolution)
     scene = load_scene(scene_dir, resolution=args.resolution)

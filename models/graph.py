@@ -16,7 +16,7 @@ from scipy import sparse
 from scipy.sparse import csgraph
 from scipy.spatial import cKDTree
 
-from models.params import Parameter, ParamSpace
+from .params import Parameter, ParamSpace
 
 # Zero-length edges (duplicate codes) must stay stored: sparse arithmetic drops explicit zeros.
 _TINY = np.finfo(np.float64).tiny

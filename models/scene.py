@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageOps
 
-from models.params import Parameter, ParamSpace
+from .params import Parameter, ParamSpace
 
 SPEC_FILE = "scene.json"
 SAMPLES_FILE = "samples.csv"

@@ -40,7 +40,7 @@ def _print_json(obj) -> None:
 
 # -- commands ---------------------------------------------------------------------------------
 def cmd_render_demo(args) -> int:
-    from models.render import write_demo
+    from ..models.render import write_demo
 
     scene_dir, truth_dir = write_demo(args.out, size=args.size, pairs=args.pairs, seed=args.seed,
                                       colour=args.colour)
@@ -52,9 +52,9 @@ def train_into_registry(scene_dir: Path, name: str, registry, *, resolution: int
                         steps: int | None, budget: float | None, seed: int, quiet: bool = False,
                         on_step=None):
     """Load a scene folder, train, and publish the bundle; returns the ModelVersion."""
-    from models.pipeline import train_bundle
-    from models.scene import load_scene
-    from models.train import TrainConfig, default_model_config
+    from ..models.pipeline import train_bundle
+    from ..models.scene import load_scene
+    from ..models.train import TrainConfig, default_model_config
     from .registry import check_name
 
     check_name(name)  # fail before minutes of training, not after
@@ -81,7 +81,7 @@ def cmd_train(args) -> int:
 def refine_line(manifest: dict) -> str:
     """Whether a model refines its frames with detail from real training images, and the held-out
     in-betweens behind that choice (decoded -> refined), from its bundle manifest."""
-    from models.refine import RefineConfig, choice
+    from ..models.refine import RefineConfig, choice
 
     chosen = choice(manifest)
     if not chosen["chosen"]:
@@ -99,7 +99,7 @@ def refine_line(manifest: dict) -> str:
 
 
 def cmd_models(args) -> int:
-    from models.bundle import read_manifest
+    from ..models.bundle import read_manifest
 
     reg = _registry(args)
     rows = reg.list_models()
@@ -119,8 +119,8 @@ def parse_end(text: str, engine) -> "Endpoint":
     """An end from the command line: an image path, or settings as name=value,name=value."""
     from PIL import Image
 
-    from models.engine import Endpoint
-    from models.scene import image_to_array, native_channels
+    from ..models.engine import Endpoint
+    from ..models.scene import image_to_array, native_channels
 
     if "=" in text and not Path(text).exists():
         values = {}
@@ -150,7 +150,7 @@ def parse_end(text: str, engine) -> "Endpoint":
 
 
 def _local_engine(args):
-    from models.engine import Engine
+    from ..models.engine import Engine
 
     entry = _registry(args).get(args.name, args.version)
     return Engine.load(entry.path), entry
@@ -182,7 +182,7 @@ def cmd_between(args) -> int:
             save_png(f.image, out / name)
         frames.append({"index": f.index, "t": round(f.t, 6), "confidence": f.confidence, "accepted": f.accepted,
                        "params": f.params, "detail": f.detail, "image": name})
-    from models.latent_map import engine_map_png
+    from ..models.latent_map import engine_map_png
 
     engine_map_png(engine, [answer], out / LATENT_MAP,
                    title=f"{entry.name}@{entry.version}: bank codes and the {answer.route} route")
@@ -198,7 +198,7 @@ def cmd_between(args) -> int:
 
 
 def cmd_eval(args) -> int:
-    from models.evaluate import evaluate, format_table
+    from ..models.evaluate import evaluate, format_table
 
     engine, entry = _local_engine(args)
     out = Path(args.out or f"eval-{entry.name}-{entry.version}")
@@ -213,7 +213,7 @@ def cmd_eval(args) -> int:
 
 
 def cmd_demo(args) -> int:
-    from models.render import write_demo
+    from ..models.render import write_demo
 
     out = Path(args.out or tempfile.mkdtemp(prefix="geotween-demo-"))
     print(f"1/3 rendering the demo scene (relief tile under a moving lamp) into {out}")
@@ -225,8 +225,8 @@ def cmd_demo(args) -> int:
     print(f"registered {entry.name}@{entry.version}: held-out reconstruction {m['holdout_psnr']:.2f} dB, "
           f"SSIM {m['holdout_ssim']:.4f}, trained in {m['train_seconds']:.0f} s")
     print("3/3 in-betweens against the true renders")
-    from models.engine import Engine
-    from models.evaluate import evaluate, format_table
+    from ..models.engine import Engine
+    from ..models.evaluate import evaluate, format_table
 
     engine = Engine.load(entry.path)
     report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png", latent_map=out / LATENT_MAP)
@@ -308,8 +308,8 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     configure_torch(args.threads)
-    from models.bundle import BundleError
-    from models.scene import SceneError
+    from ..models.bundle import BundleError
+    from ..models.scene import SceneError
     from .registry import RegistryError
 
     try:

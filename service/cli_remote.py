@@ -25,7 +25,7 @@ EXIT_SERVICE = 1  # the service could not be reached, or failed on its side
 # -- helpers other commands reuse ---------------------------------------------------------------
 def open_engine(registry, name: str, version: int | None = None):
     """(Engine, ModelVersion) of a registered model, latest version when `version` is None."""
-    from models.engine import Engine
+    from ..models.engine import Engine
 
     entry = registry.get(name, version)
     return Engine.load(entry.path), entry

@@ -19,9 +19,9 @@ from fastapi import Path as PathParam
 from fastapi.security import APIKeyHeader, HTTPAuthorizationCredentials, HTTPBearer
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 
-from models.bundle import read_manifest
-from models.engine import Engine
-from models.params import ParamSpace
+from ..models.bundle import read_manifest
+from ..models.engine import Engine
+from ..models.params import ParamSpace
 
 from .errors import Unauthorized, Unavailable
 from .jobs import InferencePool, JobManager

@@ -21,8 +21,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from models.bundle import BundleError
-from models.scene import SceneError
+from ..models.bundle import BundleError
+from ..models.scene import SceneError
 
 from .registry import InvalidName, ModelNotFound, RegistryError, VersionNotFound
 

@@ -14,7 +14,7 @@ import cv2
 import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 
-from models.scene import image_to_array
+from ..models.scene import image_to_array
 
 from .errors import InvalidImage, TooLarge
 

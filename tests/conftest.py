@@ -5,8 +5,8 @@ import numpy as np
 import pytest
 import torch
 
-from models.render import DEMO_SPACE, render_many
-from models.scene import Scene
+from geotween.models.render import DEMO_SPACE, render_many
+from geotween.models.scene import Scene
 
 torch.set_num_threads(2)  # once, for the whole test session
 
@@ -36,8 +36,8 @@ def small_scene() -> Scene:
 @pytest.fixture(scope="session")
 def small_bundle(small_scene, tmp_path_factory) -> Path:
     """A bundle trained for a few seconds, with its confidence calibrated (tau 0.85)."""
-    from models.pipeline import train_bundle
-    from models.train import TrainConfig
+    from geotween.models.pipeline import train_bundle
+    from geotween.models.train import TrainConfig
 
     out = tmp_path_factory.mktemp("small-bundle")
     train_bundle(small_scene, out, name="small-tile", train_config=TrainConfig(**SMALL_TRAIN), progress=None)
@@ -46,7 +46,7 @@ def small_bundle(small_scene, tmp_path_factory) -> Path:
 
 @pytest.fixture(scope="session")
 def small_engine(small_bundle):
-    from models.engine import Engine
+    from geotween.models.engine import Engine
 
     return Engine.load(small_bundle)
 
@@ -54,8 +54,8 @@ def small_engine(small_bundle):
 @pytest.fixture(scope="session")
 def service_bundle(tmp_path_factory) -> Path:
     """One tiny uncalibrated bundle (16 px, 10 steps) for the service tests; registries copy it."""
-    from models.pipeline import train_bundle
-    from models.train import TrainConfig
+    from geotween.models.pipeline import train_bundle
+    from geotween.models.train import TrainConfig
 
     out = tmp_path_factory.mktemp("service-tiny-bundle")
     train_bundle(tiny_demo_scene(), out, name="tile", progress=None, calibrate=False,

@@ -11,7 +11,7 @@ from typing import Sequence
 from fastapi import Request
 from fastapi.responses import JSONResponse, Response
 
-from models.engine import FrameCounts
+from ...models.engine import FrameCounts
 
 from ..imaging import encode_png, png_base64
 from ..schemas import NOTICE, ErrorOut

@@ -8,9 +8,9 @@ from fastapi import Path as PathParam
 from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
-from models.engine import Endpoint
-from models.params import ParamSpace
-from models.refine import choice as refine_choice
+from ...models.engine import Endpoint
+from ...models.params import ParamSpace
+from ...models.refine import choice as refine_choice
 
 from ..deps import ApiKeyDep, ModelCache, ModelName, Services, ServicesDep, note
 from ..errors import BadInput

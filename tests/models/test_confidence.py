@@ -9,7 +9,7 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import roc_auc_score
 from sklearn.preprocessing import StandardScaler
 
-from models.confidence import (Calibrator, ConfidenceModel, SignalCombiner, _pav, auroc, combine_signals,
+from geotween.models.confidence import (Calibrator, ConfidenceModel, SignalCombiner, _pav, auroc, combine_signals,
                                ece, fit_confidence, reliability_table)
 
 
@@ -240,7 +240,7 @@ def test_fit_confidence_rejects_bad_input():
 
 
 def test_detail_transfer_takes_the_cheapest_flow_that_does_as_well_as_the_best():
-    from models.calibrate import REFINE_TIE_DB, pick_refine
+    from geotween.models.calibrate import REFINE_TIE_DB, pick_refine
 
     def scores(psnr, ssim):
         return {"psnr": psnr, "ssim": ssim}

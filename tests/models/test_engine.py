@@ -2,8 +2,8 @@ import numpy as np
 import pytest
 from scipy.spatial import cKDTree
 
-from models.engine import Endpoint
-from models.render import DEMO_SPACE
+from geotween.models.engine import Endpoint
+from geotween.models.render import DEMO_SPACE
 
 
 def P(az, el):
@@ -104,7 +104,7 @@ def test_calibration_is_stored_with_held_out_metrics(small_engine):
 
 
 def test_tube_is_chosen_on_the_held_out_share(small_engine):
-    from models.calibrate import TUBES
+    from geotween.models.calibrate import TUBES
 
     route = small_engine.manifest["route"]
     scores = {float(k): v for k, v in route["holdout_psnr_by_tube"].items()}
@@ -114,7 +114,7 @@ def test_tube_is_chosen_on_the_held_out_share(small_engine):
 
 
 def test_a_new_model_computes_only_the_signals_it_was_fitted_on(small_engine):
-    from models.engine import FITTED_SIGNALS, REFINED_SIGNALS
+    from geotween.models.engine import FITTED_SIGNALS, REFINED_SIGNALS
 
     want = REFINED_SIGNALS if small_engine.manifest["refine"]["on"] else FITTED_SIGNALS
     assert small_engine.manifest["confidence"]["signals"] == list(want)
@@ -124,7 +124,7 @@ def test_a_new_model_computes_only_the_signals_it_was_fitted_on(small_engine):
 
 def test_a_refining_model_scores_how_much_detail_it_took(small_bundle):
     # the detail signal is 1 - the frame's detail share; an unrefined frame scores 1 (nothing taken)
-    from models.engine import REFINED_SIGNALS, Engine
+    from geotween.models.engine import REFINED_SIGNALS, Engine
 
     on, off = Engine.load(small_bundle, refine=True), Engine.load(small_bundle, refine=False)
     for engine in (on, off):  # the signals alone: no confidence model fitted on them here
@@ -137,9 +137,9 @@ def test_a_refining_model_scores_how_much_detail_it_took(small_bundle):
 
 
 def test_older_bundles_with_four_signals_still_score(small_bundle):
-    from models.bundle import load_bundle
-    from models.confidence import fit_confidence
-    from models.engine import LEGACY_SIGNALS as SIGNALS, Engine
+    from geotween.models.bundle import load_bundle
+    from geotween.models.confidence import fit_confidence
+    from geotween.models.engine import LEGACY_SIGNALS as SIGNALS, Engine
 
     bundle = load_bundle(small_bundle)
     rng = np.random.default_rng(0)
@@ -159,7 +159,7 @@ def test_a_refining_model_keeps_a_confidence_for_its_decoded_frames(small_engine
     refine = small_engine.manifest["refine"]
     assert ("decoded_confidence" in refine) == bool(refine["on"])
     if refine["on"]:
-        from models.engine import FITTED_SIGNALS
+        from geotween.models.engine import FITTED_SIGNALS
 
         assert refine["decoded_confidence"]["signals"] == list(FITTED_SIGNALS)
         assert small_engine.manifest["metrics"]["confidence"]["decoded_frames"]["status"] == "fitted"
@@ -168,9 +168,9 @@ def test_a_refining_model_keeps_a_confidence_for_its_decoded_frames(small_engine
 @pytest.fixture(scope="module")
 def skippable(small_bundle):
     """The small model forced to refine, with a confidence fitted on its decoded frames."""
-    from models.calibrate import calibrate_decoded
-    from models.confidence import ConfidenceModel
-    from models.engine import Engine
+    from geotween.models.calibrate import calibrate_decoded
+    from geotween.models.confidence import ConfidenceModel
+    from geotween.models.engine import Engine
 
     engine = Engine.load(small_bundle, refine=True)
     before = engine.refine, engine.signal_names
@@ -198,7 +198,7 @@ def test_refine_false_serves_the_decoded_frames_scored_by_their_own_confidence(s
 
 
 def test_refine_false_is_refused_when_no_decoded_frame_confidence_was_fitted(small_bundle):
-    from models.engine import Engine
+    from geotween.models.engine import Engine
 
     engine = Engine.load(small_bundle, refine=True)
     engine.decoded_confidence = None
@@ -216,11 +216,11 @@ def test_training_a_refining_model_stores_both_confidences(small_scene, tmp_path
     # training then stores: the confidence of refined frames and the one of decoded frames
     from conftest import SMALL_TRAIN
 
-    from models import calibrate
-    from models.engine import REFINED_SIGNALS, Engine
-    from models.pipeline import train_bundle
-    from models.refine import RefineConfig
-    from models.train import TrainConfig
+    from geotween.models import calibrate
+    from geotween.models.engine import REFINED_SIGNALS, Engine
+    from geotween.models.pipeline import train_bundle
+    from geotween.models.refine import RefineConfig
+    from geotween.models.train import TrainConfig
 
     real = calibrate.choose_refine
 

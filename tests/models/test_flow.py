@@ -3,8 +3,8 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from models import flow as lflow
-from models.metrics import psnr
+from geotween.models import flow as lflow
+from geotween.models.metrics import psnr
 
 skdata = pytest.importorskip("skimage.data")
 

@@ -6,9 +6,9 @@ from scipy.spatial.distance import cdist, mahalanobis
 from sklearn.datasets import make_swiss_roll
 from sklearn.neighbors import kneighbors_graph
 
-from models.graph import (LatentGraph, build_graph, lower_bound, nearest_nodes, path_with_ends,
+from geotween.models.graph import (LatentGraph, build_graph, lower_bound, nearest_nodes, path_with_ends,
                           shortest_path)
-from models.params import Parameter, ParamSpace
+from geotween.models.params import Parameter, ParamSpace
 
 
 def spiral_arc(t):

@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from models.latent_map import RouteMarks, colour_fraction, draw_map, fit_map
+from geotween.models.latent_map import RouteMarks, colour_fraction, draw_map, fit_map
 
 
 def _codes(n=120, d=5, seed=0):

@@ -3,7 +3,7 @@ import pytest
 from skimage import data
 from skimage.metrics import peak_signal_noise_ratio, structural_similarity
 
-from models.metrics import psnr, psnr_batch, rmse_batch, ssim, ssim_batch
+from geotween.models.metrics import psnr, psnr_batch, rmse_batch, ssim, ssim_batch
 
 # Wang et al. 2004 settings, as scikit-image names them.
 WANG = dict(gaussian_weights=True, sigma=1.5, use_sample_covariance=False, K1=0.01, K2=0.03)

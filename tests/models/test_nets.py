@@ -4,7 +4,7 @@ import pytest
 import torch
 from torch import nn
 
-from models.nets import Autoencoder, ModelConfig, inference_copy, subpixel_conv
+from geotween.models.nets import Autoencoder, ModelConfig, inference_copy, subpixel_conv
 
 
 @pytest.mark.parametrize("cin,cout,size", [(16, 1, 8), (8, 3, 5), (32, 16, 4)])

@@ -21,11 +21,11 @@ from skimage.filters import gaussian
 from skimage.metrics import peak_signal_noise_ratio
 from skimage.transform import resize
 
-from models.engine import Endpoint, Engine
-from models.params import Parameter, ParamSpace
-from models.pipeline import train_bundle
-from models.scene import Scene
-from models.train import TrainConfig, default_model_config
+from geotween.models.engine import Endpoint, Engine
+from geotween.models.params import Parameter, ParamSpace
+from geotween.models.pipeline import train_bundle
+from geotween.models.scene import Scene
+from geotween.models.train import TrainConfig, default_model_config
 
 # Both scenes keep every view in the bank (holdout 0): the held-out share only feeds confidence
 # calibration, which these checks skip to stay fast.

@@ -6,10 +6,10 @@ import pytest
 from PIL import Image
 from skimage import data
 
-from models.evaluate import load_truth
-from models.photo import (PHOTO_SPACE, TIGHTEST, WIDEST, crop_resample, photo_grid, photo_pairs, view,
+from geotween.models.evaluate import load_truth
+from geotween.models.photo import (PHOTO_SPACE, TIGHTEST, WIDEST, crop_resample, photo_grid, photo_pairs, view,
                           window_box, write_photo_scene)
-from models.scene import load_scene
+from geotween.models.scene import load_scene
 
 STEP = 1.0 / 11.0  # 12 grid values over [0, 1]
 

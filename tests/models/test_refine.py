@@ -4,10 +4,10 @@ import numpy as np
 import pytest
 from scipy.ndimage import gaussian_filter
 
-from models import refine as lrefine
-from models.engine import Endpoint, Engine
-from models.metrics import psnr, psnr_batch
-from models.render import render
+from geotween.models import refine as lrefine
+from geotween.models.engine import Endpoint, Engine
+from geotween.models.metrics import psnr, psnr_batch
+from geotween.models.render import render
 
 skdata = pytest.importorskip("skimage.data")
 

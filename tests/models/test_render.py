@@ -2,8 +2,8 @@
 import numpy as np
 import pytest
 
-from models.params import Parameter, ParamSpace
-from models.render import (DEMO_SPACE, Tile, albedo_map, demo_grid, grid_pairs, heightfield, render,
+from geotween.models.params import Parameter, ParamSpace
+from geotween.models.render import (DEMO_SPACE, Tile, albedo_map, demo_grid, grid_pairs, heightfield, render,
                            render_many, shadow_mask, truth_pairs)
 
 

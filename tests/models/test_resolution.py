@@ -7,11 +7,11 @@ import numpy as np
 from fastapi.testclient import TestClient
 from PIL import Image
 
-from models.engine import Endpoint, Engine
-from models.evaluate import evaluate
-from models.pipeline import train_bundle
-from models.render import truth_pairs, write_truth
-from models.train import TrainConfig
+from geotween.models.engine import Endpoint, Engine
+from geotween.models.evaluate import evaluate
+from geotween.models.pipeline import train_bundle
+from geotween.models.render import truth_pairs, write_truth
+from geotween.models.train import TrainConfig
 from tests.conftest import tiny_demo_scene
 
 
@@ -29,9 +29,9 @@ def test_a_128px_model_trains_serves_and_evaluates(tmp_path):
     report = evaluate(engine, truth)
     assert report["pairs"] == 2 and np.isfinite(report["methods"]["geodesic"]["psnr"])
 
-    from service.api import create_app
-    from service.registry import Registry
-    from service.settings import Settings
+    from geotween.service.api import create_app
+    from geotween.service.registry import Registry
+    from geotween.service.settings import Settings
 
     root = tmp_path / "registry"
     Registry.open(root).publish("tile-128", lambda f: shutil.copytree(tmp_path / "bundle", f, dirs_exist_ok=True))

@@ -4,7 +4,7 @@ import pytest
 
 from scipy.spatial import cKDTree
 
-from models.route import at_t, interior_t, polyline_length, relax, resample, straight, taut
+from geotween.models.route import at_t, interior_t, polyline_length, relax, resample, straight, taut
 
 # An L: 2 along x, then 1 along y; total length 3.
 L_SHAPE = np.array([[0.0, 0.0], [2.0, 0.0], [2.0, 1.0]])

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from models.params import ParamSpace
-from models.scene import SceneError, load_scene, load_spec, save_scene
+from geotween.models.params import ParamSpace
+from geotween.models.scene import SceneError, load_scene, load_spec, save_scene
 
 SPEC = {"name": "relief-tile",
         "parameters": [{"name": "lamp_azimuth", "unit": "deg", "min": 0, "max": 360, "periodic": True},

@@ -2,13 +2,13 @@
 scikit-image wheel) seen through a window that pans and zooms; truth frames are exact crops."""
 import pytest
 
-from models.calibrate import REFINE_FLOWS, pick_refine
-from models.engine import Endpoint, Engine
-from models.evaluate import evaluate, format_table
-from models.photo import write_photo_scene
-from models.pipeline import train_bundle
-from models.scene import load_scene
-from models.train import TrainConfig, default_model_config
+from geotween.models.calibrate import REFINE_FLOWS, pick_refine
+from geotween.models.engine import Endpoint, Engine
+from geotween.models.evaluate import evaluate, format_table
+from geotween.models.photo import write_photo_scene
+from geotween.models.pipeline import train_bundle
+from geotween.models.scene import load_scene
+from geotween.models.train import TrainConfig, default_model_config
 
 skdata = pytest.importorskip("skimage.data")
 

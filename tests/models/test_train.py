@@ -2,10 +2,10 @@ import numpy as np
 import pytest
 import torch
 
-from models.bundle import BundleError, load_bundle, read_manifest
-from models.nets import ModelConfig
-from models.pipeline import train_bundle
-from models.train import TrainConfig, default_model_config, encode, split_holdout, train
+from geotween.models.bundle import BundleError, load_bundle, read_manifest
+from geotween.models.nets import ModelConfig
+from geotween.models.pipeline import train_bundle
+from geotween.models.train import TrainConfig, default_model_config, encode, split_holdout, train
 
 FAST = dict(batch_triplets=6, extra_images=4)
 
@@ -19,7 +19,7 @@ def test_training_lowers_reconstruction_and_the_collinearity_term_lowers_colline
     assert shaped.metrics["collinearity"] < plain.metrics["collinearity"]
     assert shaped.metrics["holdout_psnr"] > 15.0
     # the split by whether a triplet moves along the periodic azimuth averages back to the whole
-    from models.triplets import mine_triplets
+    from geotween.models.triplets import mine_triplets
 
     cfg, params = TrainConfig(), tiny_scene.params[shaped.train_idx]
     trip = mine_triplets(params, tiny_scene.space, scale=tiny_scene.space.spacing(tiny_scene.params),
@@ -105,7 +105,7 @@ def test_ssim_loss_equals_scikit_image():
     # statistics is the reference the training term must match (Wang et al. 2004)
     from skimage.metrics import structural_similarity
 
-    from models.losses import ssim
+    from geotween.models.losses import ssim
 
     rng = np.random.default_rng(3)
     a = rng.random((3, 3, 24, 24)).astype(np.float32)

@@ -1,8 +1,8 @@
 import numpy as np
 import pytest
 
-from models.params import Parameter, ParamSpace
-from models.triplets import mine_triplets
+from geotween.models.params import Parameter, ParamSpace
+from geotween.models.triplets import mine_triplets
 
 
 def _grid(nx, ny, periodic_x=False):

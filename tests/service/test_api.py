@@ -17,12 +17,12 @@ from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 from pydantic import ValidationError
 
-from models.confidence import fit_confidence
-from models.engine import FITTED_SIGNALS as SIGNALS, Endpoint, Engine
-from models.render import render_many
-from service.api import create_app
-from service.registry import Registry
-from service.settings import Settings
+from geotween.models.confidence import fit_confidence
+from geotween.models.engine import FITTED_SIGNALS as SIGNALS, Endpoint, Engine
+from geotween.models.render import render_many
+from geotween.service.api import create_app
+from geotween.service.registry import Registry
+from geotween.service.settings import Settings
 
 KEY = "test-key-0123456789abcdef"
 LIMITS = dict(max_body_bytes=256 * 1024, max_image_pixels=1_000_000, max_frames=16, max_fill_sync=4,
@@ -494,7 +494,7 @@ def test_an_unexpected_error_is_a_500_in_the_error_shape(registry, caplog):
 def with_refine(src: Path, folder: Path, *, on: bool) -> dict:
     """Copy a bundle with its detail-transfer choice made on its own held-out share
     (models.calibrate.choose_refine), then `on` forced either way; returns the manifest entry."""
-    from models.calibrate import choose_refine
+    from geotween.models.calibrate import choose_refine
 
     shutil.copytree(src, folder, dirs_exist_ok=True)
     engine = Engine.load(src, refine=False)
@@ -582,7 +582,7 @@ def test_a_model_that_does_not_refine_gives_null_detail(refine_client, name):
 def skip_client(tmp_path_factory, small_bundle):
     """The calibrated small model published twice with detail transfer forced on: "cal" without a
     confidence for decoded frames (bundles trained before it), "cal-fast" with one."""
-    from models.calibrate import calibrate_decoded
+    from geotween.models.calibrate import calibrate_decoded
 
     reg = Registry.open(tmp_path_factory.mktemp("skip-registry"))
     engine = Engine.load(small_bundle, refine=True)

@@ -2,7 +2,7 @@ import json
 
 import pytest
 
-from service.cli import main
+from geotween.service.cli import main
 
 
 @pytest.fixture(scope="module")
@@ -27,8 +27,8 @@ def test_render_demo_writes_scene_and_truth(demo_dir):
 def test_render_demo_colour_writes_rgb_scene_and_truth(tmp_path):
     from PIL import Image
 
-    from models.evaluate import load_truth
-    from models.scene import load_scene
+    from geotween.models.evaluate import load_truth
+    from geotween.models.scene import load_scene
 
     assert main(["render-demo", str(tmp_path), "--size", "16", "--pairs", "2", "--colour"]) == 0
     scene = load_scene(tmp_path / "scene", resolution=16)
@@ -62,7 +62,7 @@ def test_bad_input_exits_2_with_message(tmp_path, capsys):
 def small_registry(small_bundle, tmp_path):
     import shutil
 
-    from service.registry import Registry
+    from geotween.service.registry import Registry
 
     reg = Registry.open(tmp_path / "reg")
     reg.publish("small", lambda folder: shutil.copytree(small_bundle, folder, dirs_exist_ok=True))
@@ -134,7 +134,7 @@ def detail_registry(service_bundle, tmp_path_factory):
     figures are its own, from models.calibrate.choose_refine)."""
     import shutil
 
-    from service.registry import Registry
+    from geotween.service.registry import Registry
     from test_api import with_refine
 
     root = tmp_path_factory.mktemp("detail-reg")
@@ -150,7 +150,7 @@ BETWEEN = ["lamp_azimuth=10,lamp_elevation=30", "lamp_azimuth=100,lamp_elevation
 
 
 def test_between_manifest_carries_each_frames_detail(detail_registry, tmp_path):
-    from models.engine import Endpoint, Engine
+    from geotween.models.engine import Endpoint, Engine
 
     root, reg, _ = detail_registry
     for name in ("fine", "plain", "bare"):
@@ -192,9 +192,9 @@ def test_fill_reports_detail_locally_and_through_the_service(detail_registry, tm
     import httpx
     from fastapi.testclient import TestClient
 
-    from service import client as client_module
-    from service.api import create_app
-    from service.settings import Settings
+    from geotween.service import client as client_module
+    from geotween.service.api import create_app
+    from geotween.service.settings import Settings
 
     root, _, _ = detail_registry
     targets = tmp_path / "targets.csv"

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from service import client as client_module
-from service.client import Client, ClientError
+from geotween.service import client as client_module
+from geotween.service.client import Client, ClientError
 
 
 def png_b64(arr: np.ndarray) -> str:

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from service.imaging import encode_png, to_uint8
+from geotween.service.imaging import encode_png, to_uint8
 
 
 @pytest.mark.parametrize("channels, mode", [(1, "L"), (3, "RGB")])

@@ -8,12 +8,12 @@ import torch
 from fastapi.testclient import TestClient
 
 from conftest import tiny_demo_scene
-from models.scene import save_scene
-from service.api import create_app
-from service.errors import Conflict, NotFound, Unavailable
-from service.jobs import InferencePool, JobManager
-from service.registry import Registry
-from service.settings import Settings
+from geotween.models.scene import save_scene
+from geotween.service.api import create_app
+from geotween.service.errors import Conflict, NotFound, Unavailable
+from geotween.service.jobs import InferencePool, JobManager
+from geotween.service.registry import Registry
+from geotween.service.settings import Settings
 
 KEY = "jobs-key-0123456789abcdef"
 

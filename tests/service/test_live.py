@@ -19,9 +19,9 @@ import pytest
 from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 
-from models.render import render_many
-from service.client import Client, ClientError
-from service.registry import Registry
+from geotween.models.render import render_many
+from geotween.service.client import Client, ClientError
+from geotween.service.registry import Registry
 
 ROOT = Path(__file__).resolve().parents[2]
 KEY = "live-key-0123456789abcdef"
@@ -205,7 +205,7 @@ def test_eight_concurrent_clients(server):
 
 
 def test_fill_command_local_and_through_the_service(server, tmp_path, capsys):
-    from service.cli import main
+    from geotween.service.cli import main
 
     targets = tmp_path / "targets.csv"
     targets.write_text("lamp_azimuth,lamp_elevation\n0,20\n90,45\n\n359,70\n")
@@ -233,7 +233,7 @@ def test_fill_command_local_and_through_the_service(server, tmp_path, capsys):
     ("lamp_azimuth,lamp_elevation\n", "no targets"),
 ])
 def test_fill_command_bad_input_exits_2(server, tmp_path, capsys, csv_text, words):
-    from service.cli import main
+    from geotween.service.cli import main
 
     targets = tmp_path / "t.csv"
     targets.write_text(csv_text)

@@ -5,11 +5,11 @@ import numpy as np
 import pytest
 from fastapi.testclient import TestClient
 
-from models.engine import Endpoint, Engine
-from models.latent_map import fit_map
-from service.api import create_app
-from service.registry import Registry
-from service.settings import Settings
+from geotween.models.engine import Endpoint, Engine
+from geotween.models.latent_map import fit_map
+from geotween.service.api import create_app
+from geotween.service.registry import Registry
+from geotween.service.settings import Settings
 
 
 def P(az, el):

@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from models.latent_map import INK, ROUTE
-from service.cli import main
-from service.registry import Registry
+from geotween.models.latent_map import INK, ROUTE
+from geotween.service.cli import main
+from geotween.service.registry import Registry
 
 
 @pytest.fixture(scope="module")

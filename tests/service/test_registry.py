@@ -12,8 +12,8 @@ from pathlib import Path
 
 import pytest
 
-from service import registry as reg_mod
-from service.registry import (DEFAULT_ROOT, InvalidName, ModelNotFound, ModelVersion, Registry,
+from geotween.service import registry as reg_mod
+from geotween.service.registry import (DEFAULT_ROOT, InvalidName, ModelNotFound, ModelVersion, Registry,
                               RegistryError, VersionNotFound, resolve_root)
 
 

@@ -16,9 +16,9 @@ import httpx
 import pytest
 from fastapi.testclient import TestClient
 
-from service.api import create_app
-from service.registry import Registry
-from service.settings import Settings
+from geotween.service.api import create_app
+from geotween.service.registry import Registry
+from geotween.service.settings import Settings
 from test_live import dockerfile_cmd, free_port, local_argv, wait_until_alive
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -76,10 +76,10 @@ def test_the_page_uses_buttons_and_labels():
 def test_pip_install_ships_every_package_and_the_page():
     tool = tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["setuptools"]
     listed = set(tool["packages"])
-    found = {str(p.parent.relative_to(ROOT)).replace(os.sep, ".") for top in ("models", "service")
+    found = {"geotween." + str(p.parent.relative_to(ROOT)).replace(os.sep, ".") for top in ("models", "service")
              for p in (ROOT / top).rglob("__init__.py")}
     assert found <= listed, f"packages missing from pyproject: {sorted(found - listed)}"
-    patterns = tool["package-data"]["service"]
+    patterns = tool["package-data"]["geotween.service"]
     for f in STATIC.iterdir():
         assert any(fnmatch.fnmatch(str(f.relative_to(ROOT / "service")), pat) for pat in patterns), f.name
 
@@ -104,8 +104,8 @@ def skippable_copy(src: Path, folder: Path) -> None:
 
     import numpy as np
 
-    from models.calibrate import calibrate_decoded
-    from models.engine import Engine
+    from geotween.models.calibrate import calibrate_decoded
+    from geotween.models.engine import Engine
 
     shutil.copytree(src, folder, dirs_exist_ok=True)
     engine = Engine.load(src, refine=True)
@@ -294,7 +294,7 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
         # an end given as an image: chosen with the file input, sent as a data URL
         from PIL import Image
 
-        from models.render import render_many
+        from geotween.models.render import render_many
 
         picture = tmp_path / "start.png"
         Image.fromarray((render_many([[300.0, 30.0]], 16)[0, ..., 0] * 255).round().astype("uint8")).save(picture)
