@@ -25,7 +25,8 @@ from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.middleware import Middleware
 
-from .deps import Metrics, Services
+from .deps import Services
+from .metrics import Metrics
 from .errors import HTTP_CODES, ErrorInfo, ServiceError, describe
 from .registry import RegistryError
 from .settings import Settings

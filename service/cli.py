@@ -4,28 +4,15 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import sys
 import tempfile
 from pathlib import Path
 
-EXIT_OK, EXIT_BAD_INPUT, EXIT_REJECTED = 0, 2, 3
+from .cli_common import (EXIT_BAD_INPUT, EXIT_OK, EXIT_REJECTED, NO_REFINE_HELP, UsageError, add_global_options,
+                         configure_torch)
+from .cli_remote import add_commands
+
 LATENT_MAP = "latent_map.png"  # bank codes (PCA) with the route(s) drawn, beside the frames or report
-
-
-NO_REFINE_HELP = ("skip detail transfer on a model that refines: the decoded frames only, faster and softer, "
-                  "scored by the confidence fitted on decoded frames")
-
-
-class UsageError(ValueError):
-    """Bad command-line input that no lower layer reports."""
-
-
-def configure_torch(threads: int | None = None) -> None:
-    """Set torch's intra-op threads once per process (default: all cores, at most 4)."""
-    import torch
-
-    torch.set_num_threads(threads or min(4, os.cpu_count() or 1))
 
 
 def _registry(args):
@@ -48,28 +35,9 @@ def cmd_render_demo(args) -> int:
     return EXIT_OK
 
 
-def train_into_registry(scene_dir: Path, name: str, registry, *, resolution: int, latent_dim: int | None,
-                        steps: int | None, budget: float | None, seed: int, quiet: bool = False,
-                        on_step=None):
-    """Load a scene folder, train, and publish the bundle; returns the ModelVersion."""
-    from ..models.pipeline import train_bundle
-    from ..models.scene import load_scene
-    from ..models.train import TrainConfig, default_model_config
-    from .registry import check_name
-
-    check_name(name)  # fail before minutes of training, not after
-    scene = load_scene(scene_dir, resolution=resolution)
-    tcfg = TrainConfig(seed=seed, budget_seconds=budget)
-    if steps is not None:
-        tcfg.steps = steps
-    mcfg = default_model_config(scene, latent_dim=latent_dim)
-    progress = None if quiet else sys.stderr
-    return registry.publish(name, lambda folder: train_bundle(
-        scene, folder, name=name, model_config=mcfg, train_config=tcfg, progress=progress,
-        on_step=on_step))
-
-
 def cmd_train(args) -> int:
+    from .training import train_into_registry
+
     entry = train_into_registry(Path(args.scene), args.name, _registry(args), resolution=args.resolution,
                                 latent_dim=args.latent_dim, steps=args.steps, budget=args.budget_seconds,
                                 seed=args.seed)
@@ -214,6 +182,7 @@ def cmd_eval(args) -> int:
 
 def cmd_demo(args) -> int:
     from ..models.render import write_demo
+    from .training import train_into_registry
 
     out = Path(args.out or tempfile.mkdtemp(prefix="geotween-demo-"))
     print(f"1/3 rendering the demo scene (relief tile under a moving lamp) into {out}")
@@ -245,12 +214,20 @@ def cmd_demo(args) -> int:
 
 
 # -- parser -----------------------------------------------------------------------------------
+class _GlobalOptionsParser(argparse.ArgumentParser):
+    """A verb's parser that also takes the global options, so `geotween train SCENE --name N
+    --registry DIR` works as well as `geotween --registry DIR train ...`."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        add_global_options(self, after_verb=True)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="geotween", description="In-between frames along latent geodesics, "
                                 "each with a calibrated confidence. Frames are synthesized, not captured.")
-    p.add_argument("--registry", help="registry folder (else $GEOTWEEN_REGISTRY, else ~/.local/share/geotween/registry)")
-    p.add_argument("--threads", type=int, default=None, help="torch threads (default: cores, at most 4)")
-    sub = p.add_subparsers(dest="command", required=True)
+    add_global_options(p)
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_GlobalOptionsParser)
 
     s = sub.add_parser("demo", help="render the demo scene, train it, register it, show in-betweens")
     s.add_argument("--out", help="working folder (default: a new temporary folder)")
@@ -300,7 +277,6 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("models", help="list the registry")
     s.set_defaults(func=cmd_models)
-    from .cli_remote import add_commands
     add_commands(sub)
     return p
 

@@ -16,7 +16,7 @@ import sys
 from pathlib import Path
 from typing import Callable, Mapping, Sequence, TextIO
 
-from .cli import EXIT_BAD_INPUT, EXIT_OK, NO_REFINE_HELP, UsageError
+from .cli_common import EXIT_BAD_INPUT, EXIT_OK, NO_REFINE_HELP, UsageError
 
 NOTICE = "frames are synthesized by a learned model, not captured"
 EXIT_SERVICE = 1  # the service could not be reached, or failed on its side

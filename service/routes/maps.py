@@ -16,7 +16,8 @@ from fastapi import APIRouter, Query, Request
 from starlette.concurrency import run_in_threadpool
 
 
-from ..deps import ModelCache, ModelName, ServicesDep, note
+from ..cache import ModelCache
+from ..deps import ModelName, ServicesDep, note
 from ..errors import BadInput
 from ..registry import ModelVersion
 from ..schemas import LatentMapOut, MapPointsOut, MapRequest

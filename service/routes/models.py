@@ -12,7 +12,8 @@ from ...models.engine import Endpoint
 from ...models.params import ParamSpace
 from ...models.refine import choice as refine_choice
 
-from ..deps import ApiKeyDep, ModelCache, ModelName, Services, ServicesDep, note
+from ..cache import ModelCache
+from ..deps import ApiKeyDep, ModelName, Services, ServicesDep, note
 from ..errors import BadInput
 from ..imaging import decode_base64, open_image, to_model_array
 from ..registry import ModelVersion

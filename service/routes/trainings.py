@@ -10,6 +10,7 @@ from ..deps import ApiKeyDep, Services, ServicesDep, note
 from ..errors import BadInput
 from ..registry import check_name
 from ..schemas import JobOut, TrainingRequest
+from ..training import train_into_registry
 from .common import errors
 
 router = APIRouter(prefix="/v1", tags=["trainings"])
@@ -37,8 +38,6 @@ def _scene_dir(services: Services, raw: str) -> Path:
                         **errors(401, 404, 422, 503)},
              summary="Train and register a model from a scene folder on the server (API key)")
 def start_training(key: ApiKeyDep, body: TrainingRequest, services: ServicesDep, request: Request):
-    from ..cli import train_into_registry  # the CLI owns the train-and-publish recipe
-
     s = services.settings
     name = check_name(body.name)
     if body.steps is not None and body.steps > s.max_train_steps:

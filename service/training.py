@@ -1,0 +1,32 @@
+"""Train-and-register: a scene folder in, a published model version out. The one recipe the
+`train` command and the trainings route both call."""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+from typing import Callable
+
+from ..models.pipeline import train_bundle
+from ..models.scene import load_scene
+from ..models.train import TrainConfig, default_model_config
+
+from .registry import ModelVersion, Registry, check_name
+
+
+def train_into_registry(scene_dir: str | Path, name: str, registry: Registry, *, resolution: int = 64,
+                        latent_dim: int | None = None, steps: int | None = None, budget: float | None = None,
+                        seed: int = 0, quiet: bool = False,
+                        on_step: Callable[[int, int], None] | None = None) -> ModelVersion:
+    """Load a scene folder, train (resolution in pixels per side, budget in wall-clock seconds),
+    and publish the bundle under `name`; returns the new ModelVersion. The name is checked before
+    minutes of training, not after; progress goes to stderr unless `quiet`."""
+    check_name(name)
+    scene = load_scene(Path(scene_dir), resolution=resolution)
+    tcfg = TrainConfig(seed=seed, budget_seconds=budget)
+    if steps is not None:
+        tcfg.steps = steps
+    mcfg = default_model_config(scene, latent_dim=latent_dim)
+    progress = None if quiet else sys.stderr
+    return registry.publish(name, lambda folder: train_bundle(
+        scene, folder, name=name, model_config=mcfg, train_config=tcfg, progress=progress,
+        on_step=on_step))
