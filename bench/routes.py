@@ -3,7 +3,7 @@
     python bench/routes.py [--sizes 1000,10000,100000] [--routes 200] [--bundle DIR]
 
 For each size: graph build time (kNN, k rule, connectivity), route time per request (p50, p99)
-between random bank codes with the engine's search (`graph.path_with_ends`), and a check that
+between random bank codes with the engine's search (`search.path_with_ends`), and a check that
 the route's length equals scipy's Dijkstra on the whole graph for a sample of pairs. With
 --bundle, the same on a trained bundle's own bank (build with settings and pixel pruning).
 Prints one JSON object.
@@ -38,6 +38,7 @@ def measure_bank(codes: np.ndarray, *, routes: int, check: int, seed: int = 1, l
     from scipy.sparse import csgraph
 
     from geotween.models import graph as lgraph
+    from geotween.models import search as lsearch
 
     t = time.perf_counter()
     g = lgraph.build_graph(codes, **build)
@@ -47,15 +48,15 @@ def measure_bank(codes: np.ndarray, *, routes: int, check: int, seed: int = 1, l
     if local is not None:
         pairs[:, 1] = g.tree.query(g.warped[pairs[:, 0]], k=min(local, len(codes)))[1][:, -1]
     for a, b in pairs[:5]:  # warm-up: the kd view is built once per graph
-        lgraph.path_with_ends(g, codes[a], codes[b], attach=1)
+        lsearch.path_with_ends(g, codes[a], codes[b], attach=1)
     times = []
     for a, b in pairs[5:]:
         t = time.perf_counter()
-        lgraph.path_with_ends(g, codes[a], codes[b], attach=1)
+        lsearch.path_with_ends(g, codes[a], codes[b], attach=1)
         times.append((time.perf_counter() - t) * 1e3)
     worst = 0.0
     for a, b in pairs[5:5 + check]:  # exactness against scipy's Dijkstra on the whole graph
-        line, nodes = lgraph.path_with_ends(g, codes[a], codes[b], attach=1, return_nodes=True)
+        line, nodes = lsearch.path_with_ends(g, codes[a], codes[b], attach=1, return_nodes=True)
         ref = csgraph.dijkstra(g.adjacency, indices=int(a))[int(b)]
         got = float(np.sum(g.adjacency[nodes[:-1], nodes[1:]])) if len(nodes) > 1 else 0.0
         worst = max(worst, abs(got - ref) / max(ref, 1e-12))

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import ast
 import os
+import shutil
 import subprocess
 import sys
 import sysconfig
@@ -96,9 +97,14 @@ def test_no_source_file_over_the_line_limit():
 
 @pytest.fixture(scope="module")
 def wheel(tmp_path_factory) -> Path:
-    out = tmp_path_factory.mktemp("wheel")
+    # built from a copy, so setuptools' build/ and egg-info folders never land in the checkout
+    src, out = tmp_path_factory.mktemp("src"), tmp_path_factory.mktemp("wheel")
+    for name in ("pyproject.toml", "README.md"):
+        shutil.copy(ROOT / name, src / name)
+    for name in ("models", "service"):
+        shutil.copytree(ROOT / name, src / name, ignore=shutil.ignore_patterns("__pycache__"))
     subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation", "-q",
-                    "-w", str(out), str(ROOT)], check=True, capture_output=True)
+                    "-w", str(out), str(src)], check=True, capture_output=True)
     return next(out.glob("geotween-*.whl"))
 
 
