@@ -28,6 +28,7 @@ import torch
 from scipy.spatial import cKDTree
 
 from . import graph as lgraph
+from . import search as lsearch
 from . import route as lroute
 from .bundle import Bundle, load_bundle
 from .confidence import ConfidenceModel
@@ -289,7 +290,7 @@ class Engine:
 
     def relaxed_path(self, z_start: np.ndarray, z_end: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """The graph's shortest path between the ends, relaxed (curve shortening), and its nodes."""
-        line, nodes = lgraph.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
+        line, nodes = lsearch.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
         # midpoints give the relaxation room to round corners between bank nodes
         dense = lroute.at_t(line, np.linspace(0.0, 1.0, 2 * len(line) - 1))
         return lroute.relax(dense, self.project if self.project_rounds else None,
