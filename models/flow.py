@@ -2,9 +2,10 @@
 
 `flow(a, b)` gives, per pixel x of `a`, the displacement f(x) with a(x) ~ b(x + f(x)); `warp(img, f)`
 samples img at x + f(x) (bilinear, edges repeated), so warp(b, flow(a, b)) ~ a. `tween(a, b, t)` is
-the flow-warping baseline a user would otherwise reach for: both ends warped to time t with the
-flows approximated from the two end-to-end flows (the linear-motion approximation of Jiang et al.
-2018, "Super SloMo", without their learned visibility maps), then blended (1 - t) : t.
+the flow-warping baseline a user would otherwise reach for: the flows from the frame at time t back
+to each end are estimated as t-weighted blends of the forward and backward end-to-end flows (points
+assumed to move on straight lines at constant speed), each end is warped along its flow, and the
+two warped ends are blended (1 - t) : t.
 
 Two estimators: Farneback's polynomial expansion (the baseline, what a user would reach for) and
 DIS, dense inverse search (Kroeger et al. 2016, OpenCV's DISOpticalFlow, "medium" preset), which
