@@ -25,7 +25,7 @@ HEADERS = {"Content-Security-Policy": POLICY, "X-Content-Type-Options": "nosniff
 
 @lru_cache(maxsize=None)
 def _read(name: str) -> bytes:
-    return (files("service") / "static" / name).read_bytes()
+    return (files("geotween.service") / "static" / name).read_bytes()
 
 
 @router.get("/")
