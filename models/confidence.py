@@ -13,11 +13,11 @@ from __future__ import annotations
 from typing import Mapping, Sequence
 
 import numpy as np
-from scipy.special import expit, logit
+from scipy.special import betaincinv, expit, logit
 from scipy.stats import rankdata
 
-__all__ = ["Calibrator", "ConfidenceModel", "SignalCombiner", "auroc", "combine_signals", "ece",
-           "fit_confidence", "reliability_table"]
+__all__ = ["BoundConfidence", "Calibrator", "ConfidenceModel", "SignalCombiner", "auroc", "combine_signals",
+           "conservative_rate", "ece", "fit_confidence", "reliability_table"]
 
 
 def _vector(x, name: str) -> np.ndarray:
@@ -296,9 +296,52 @@ class ConfidenceModel:
                 "calibrator": self.calibrator.to_dict()}
 
     @classmethod
-    def from_dict(cls, d: Mapping) -> "ConfidenceModel":
+    def from_dict(cls, d: Mapping) -> "ConfidenceModel | BoundConfidence":
+        """A fitted model, or the conservative bound stored when there was too little to fit."""
+        if d.get("kind") == BoundConfidence.KIND:
+            return BoundConfidence.from_dict(d)
         _require(d, ("names", "combiner", "calibrator"), "confidence")
         return cls(d["names"], SignalCombiner.from_dict(d["combiner"]), Calibrator.from_dict(d["calibrator"]))
+
+
+def conservative_rate(successes: int, trials: int, *, level: float = 0.95) -> float:
+    """A rate that the true faithful share exceeds with probability `level`: the lower end of the
+    one-sided credible interval of a binomial rate under the Jeffreys prior Beta(1/2, 1/2), i.e. the
+    (1 - level) quantile of Beta(k + 1/2, n - k + 1/2). 0.0 when nothing was faithful or nothing
+    was seen: a frame is never given credit that the held-out frames did not earn."""
+    k, n = int(successes), int(trials)
+    if not 0 <= k <= n:
+        raise ValueError(f"successes: {successes!r} is out of range; allowed 0 <= successes <= trials ({trials!r})")
+    if not 0.5 <= level < 1.0:
+        raise ValueError(f"level: {level!r} is out of range; allowed 0.5 <= level < 1")
+    if k == 0:
+        return 0.0
+    return float(betaincinv(k + 0.5, n - k + 0.5, 1.0 - level))
+
+
+class BoundConfidence:
+    """The confidence of a model whose held-out frames were too few of one kind to fit a curve
+    (for example none reached tau): every frame gets the same conservative rate, so a pipeline
+    that rejects below min_confidence rejects them unless the held-out share earned better."""
+
+    KIND = "bound"
+
+    def __init__(self, names: Sequence[str], successes: int, trials: int, *, level: float = 0.95):
+        self.names, self.successes, self.trials, self.level = tuple(names), int(successes), int(trials), level
+        self.rate = conservative_rate(successes, trials, level=level)
+
+    def predict(self, features) -> np.ndarray:
+        x, _ = _matrix(features, self.names if isinstance(features, Mapping) else None)
+        return np.full(x.shape[0], self.rate)
+
+    def to_dict(self) -> dict:
+        return {"kind": self.KIND, "names": list(self.names), "successes": self.successes, "trials": self.trials,
+                "level": self.level, "rate": self.rate}
+
+    @classmethod
+    def from_dict(cls, d: Mapping) -> "BoundConfidence":
+        _require(d, ("names", "successes", "trials", "level"), "confidence")
+        return cls(d["names"], d["successes"], d["trials"], level=float(d["level"]))
 
 
 def _cross_fit(x, y, names, rng, *, folds, l2, method, min_isotonic) -> ConfidenceModel:
