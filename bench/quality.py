@@ -56,12 +56,13 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
         t = time.perf_counter()
         engine.between(Endpoint(image=imgs[i]), Endpoint(image=imgs[-1 - i]), frames=16)
         times.append((time.perf_counter() - t) * 1e3)
-    conf = manifest["metrics"].get("confidence", {})
+    cal = manifest.metrics.calibration
     summary = {"scene": scene_kind, "latent_dim": mcfg.latent_dim, "w_ssim": w_ssim, "resolution": resolution,
-               "train_seconds_incl_calibration": round(train_wall, 1), "refine": manifest.get("refine"),
-               "fit": {k: v for k, v in manifest["metrics"].items() if k != "confidence"},
-               "calibration": {k: conf.get(k) for k in ("status", "rows", "ece", "auroc", "method")},
-               "route": manifest.get("route"),
+               "train_seconds_incl_calibration": round(train_wall, 1), "refine": manifest.refine.to_dict(),
+               "fit": dict(manifest.metrics.fit),
+               "calibration": {k: None if cal is None else getattr(cal, k)
+                               for k in ("status", "rows", "ece", "auroc", "method")},
+               "route": manifest.route.to_dict(),
                "graph": {"k": engine.graph.k, "pruned": engine.graph.pruned, "components": engine.graph.components,
                          "bridges": engine.graph.bridges},
                "route_ms_mean": round(route_ms, 3), "answer16_ms_p50": round(float(np.median(times)), 2),

@@ -1,8 +1,9 @@
 """Model bundles: one self-describing folder, loadable with nothing else.
 
-    manifest.json  format, name, created, content hash, model and training config, settings space
-                   (names, units, ranges, periodic flags), resolution, channels, settings spacing,
-                   training metrics, confidence model (or null)
+    manifest.json  what the model is and how it serves (models.manifest.Manifest): format, name,
+                   creation time, content hash, model and training config, settings space,
+                   resolution, channels, settings spacing, training metrics, confidence model (or
+                   null), the route's tube and the detail-transfer choice
     weights.pt     state dict of encoder, decoder and heads (torch.load(..., weights_only=True))
     bank.npz       codes, params and 8-bit images of every training sample (the bank), and the same
                    for the held-out share, which is never in the bank
@@ -15,24 +16,19 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
 import torch
 
-from .nets import Autoencoder, ModelConfig
+from .manifest import FORMAT, BundleError, Manifest  # the bundle's error, also raised by the manifest's checks
+from .nets import Autoencoder
 from .params import ParamSpace
-from .train import TrainConfig
 
-FORMAT = "geotween-bundle/1"
 MANIFEST, WEIGHTS, BANK = "manifest.json", "weights.pt", "bank.npz"
 BANK_ARRAYS = ("codes", "params", "images", "holdout_codes", "holdout_params", "holdout_images")
-
-
-class BundleError(ValueError):
-    """A bundle folder that is missing, incomplete or of an unknown format."""
 
 
 @dataclass
@@ -40,11 +36,14 @@ class Bundle:
     """A loaded bundle. Image arrays of a bundle read from disk stay on disk until asked for
     (`images()` reads them each time and keeps nothing), so a served model with a large bank
     holds its codes, not its pixels."""
-    manifest: dict
+    manifest: Manifest
     model: Autoencoder
-    space: ParamSpace
     arrays: dict[str, np.ndarray]
     path: Path | None = None  # the folder it was loaded from, where image arrays not in `arrays` live
+
+    @property
+    def space(self) -> ParamSpace:
+        return self.manifest.space
 
     @property
     def codes(self) -> np.ndarray:
@@ -56,15 +55,15 @@ class Bundle:
 
     @property
     def scale(self) -> np.ndarray:
-        return np.asarray(self.manifest["scale"], dtype=np.float64)
+        return np.asarray(self.manifest.scale, dtype=np.float64)
 
     @property
     def resolution(self) -> int:
-        return int(self.manifest["resolution"])
+        return self.manifest.resolution
 
     @property
     def channels(self) -> int:
-        return int(self.manifest["channels"])
+        return self.manifest.channels
 
     def images(self, which: str = "images") -> np.ndarray:
         """Bank (or held-out) images as float32 (N, H, W, C) in [0, 1]."""
@@ -137,10 +136,11 @@ def content_hash(state: dict[str, torch.Tensor], arrays: dict[str, np.ndarray], 
     return h.hexdigest()
 
 
-def save_bundle(out: str | Path, *, name: str, model: Autoencoder, model_config: ModelConfig,
-                train_config: TrainConfig, space: ParamSpace, scale: np.ndarray, arrays: dict[str, np.ndarray],
-                metrics: dict, confidence: dict | None = None, extra: dict | None = None) -> dict:
-    """Write a bundle folder (created if needed); returns the manifest. Images are float in [0, 1]."""
+def save_bundle(out: str | Path, manifest: Manifest, model: Autoencoder, arrays: dict[str, np.ndarray]
+                ) -> Manifest:
+    """Write a bundle folder (created if needed) and return its manifest as written: in the
+    current format, with the creation time, the bank sizes and the content hash set here. Images
+    are float in [0, 1]."""
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     missing = [k for k in BANK_ARRAYS if k not in arrays]
@@ -148,32 +148,28 @@ def save_bundle(out: str | Path, *, name: str, model: Autoencoder, model_config:
         raise BundleError(f"bundle arrays missing: {missing}")
     stored = {k: (_to_uint8(v) if "images" in k else np.asarray(v, dtype=np.float64)) for k, v in arrays.items()}
     state = {k: v.detach().clone() for k, v in model.state_dict().items()}
-    manifest = {
-        "format": FORMAT, "name": name, "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-        "model_config": model_config.to_dict(), "train_config": train_config.to_dict(),
-        "space": space.to_list(), "resolution": model_config.resolution, "channels": model_config.channels,
-        "scale": [float(s) for s in scale], "bank_size": int(len(stored["codes"])),
-        "holdout_size": int(len(stored["holdout_codes"])), "metrics": metrics, "confidence": confidence,
-        **(extra or {}),
-    }
-    manifest["hash"] = content_hash(state, stored, manifest)
+    manifest = replace(manifest, format=FORMAT, created=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                       bank_size=int(len(stored["codes"])), holdout_size=int(len(stored["holdout_codes"])), hash="")
+    manifest = replace(manifest, hash=content_hash(state, stored, manifest.to_dict()))
     torch.save(state, out / WEIGHTS)
     np.savez(out / BANK, **stored)
-    (out / MANIFEST).write_text(json.dumps(manifest, indent=1))
+    (out / MANIFEST).write_text(json.dumps(manifest.to_dict(), indent=1))
     return manifest
 
 
-def read_manifest(path: str | Path) -> dict:
+def read_manifest(path: str | Path) -> Manifest:
+    """The manifest of the bundle folder `path`, parsed (no weights read)."""
     path = Path(path)
     try:
-        manifest = json.loads((path / MANIFEST).read_text())
+        text = json.loads((path / MANIFEST).read_text())
     except FileNotFoundError:
         raise BundleError(f"{path}: no {MANIFEST}; not a model bundle") from None
     except json.JSONDecodeError as exc:
         raise BundleError(f"{path / MANIFEST}: not valid JSON ({exc})") from None
-    if manifest.get("format") != FORMAT:
-        raise BundleError(f"{path}: unknown bundle format {manifest.get('format')!r}; expected {FORMAT!r}")
-    return manifest
+    try:
+        return Manifest.from_dict(text)
+    except BundleError as exc:
+        raise BundleError(f"{path / MANIFEST}: {exc}") from None
 
 
 def load_bundle(path: str | Path) -> Bundle:
@@ -182,7 +178,7 @@ def load_bundle(path: str | Path) -> Bundle:
     for f in (WEIGHTS, BANK):
         if not (path / f).is_file():
             raise BundleError(f"{path}: {f} is missing")
-    model = Autoencoder(ModelConfig.from_dict(manifest["model_config"]))
+    model = Autoencoder(manifest.model_config)
     model.load_state_dict(torch.load(path / WEIGHTS, weights_only=True, map_location="cpu"))
     model.eval()
     with np.load(path / BANK, allow_pickle=False) as z:
@@ -190,4 +186,4 @@ def load_bundle(path: str | Path) -> Bundle:
         if missing:
             raise BundleError(f"{path / BANK}: arrays missing: {missing}")
         arrays = {k: z[k] for k in z.files if "images" not in k}  # pixels stay on disk until asked for
-    return Bundle(manifest, model, ParamSpace.from_list(manifest["space"]), arrays, path=path)
+    return Bundle(manifest, model, arrays, path=path)

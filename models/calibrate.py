@@ -15,13 +15,17 @@ on the frames exactly as served, refined or not.
 """
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
 from . import route as lroute
 from .bundle import Bundle
 from .confidence import fit_confidence
-from .engine import FITTED_SIGNALS, REFINED_SIGNALS, ROUTES, Engine
+from .engine import FITTED_SIGNALS, REFINED_SIGNALS, ROUTES, Engine, ServingConfig
+from .manifest import Calibration, Confidence, Manifest, RefineChoice, RefineHoldout, RouteChoice, Scores
 from .metrics import psnr_batch, ssim_batch
+from .nets import Autoencoder
 from .refine import RefineConfig
 from .triplets import mine_triplets
 
@@ -103,18 +107,17 @@ def pick_refine(tried: dict[str, dict[float, dict]]) -> tuple[str, float]:
 
 
 def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
-                  tolerances=REFINE_TOLERANCES, flows=REFINE_FLOWS, seed: int = 0) -> dict:
+                  tolerances=REFINE_TOLERANCES, flows=REFINE_FLOWS, seed: int = 0) -> RefineChoice:
     """Turn detail transfer on (engine.refine) when, with the chosen flow setting and tolerance, it
     beats the decoded geodesic frames on the held-out truth by REFINE_MARGIN_DB mean PSNR without
     lowering mean SSIM. Every flow setting (`flows`, cheapest first) is tried with every tolerance;
     the chosen one is the cheapest flow that comes within REFINE_TIE_DB / REFINE_TIE_SSIM of the
-    best candidate, with its best tolerance. Returns the manifest entry {"on", "config", "holdout":
-    {"decoded", "refined", "by_tolerance" (the chosen flow's), "by_flow": {flow: {tolerance: ...}}}}."""
+    best candidate, with its best tolerance. Returns the choice with its held-out figures
+    ("by_tolerance": the chosen flow's candidates, "by_flow": every flow's)."""
     s, m, t, a = bracketed(engine, holdout_params, seed=seed)
     engine.refine = None
-    entry = {"on": False, "config": RefineConfig(tolerance=float(tolerances[0])).to_dict(), "holdout": {}}
     if len(s) == 0:
-        return entry
+        return RefineChoice(chosen=True, on=False, config=RefineConfig(tolerance=float(tolerances[0])))
     codes = route_codes(engine, s, t, a, "geodesic")
     truth = holdout_images[m]
 
@@ -133,14 +136,13 @@ def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np
     flow, best = pick_refine(tried)
     cfg = RefineConfig(tolerance=best, flow=flow)
     ref = tried[flow][best]
-    entry.update(config=cfg.to_dict(),
-                 holdout={"decoded": dec, "refined": ref,
-                          "by_tolerance": {str(k): v for k, v in tried[flow].items()},
-                          "by_flow": {f: {str(k): v for k, v in by_tol.items()} for f, by_tol in tried.items()}})
-    entry["on"] = bool(ref["psnr"] >= dec["psnr"] + REFINE_MARGIN_DB and ref["ssim"] >= dec["ssim"])
-    engine.refine = cfg if entry["on"] else None
-    engine.signal_names = REFINED_SIGNALS if entry["on"] else FITTED_SIGNALS  # the confidence follows
-    return entry
+    on = bool(ref["psnr"] >= dec["psnr"] + REFINE_MARGIN_DB and ref["ssim"] >= dec["ssim"])
+    engine.refine = cfg if on else None
+    engine.signal_names = REFINED_SIGNALS if on else FITTED_SIGNALS  # the confidence follows
+    held = RefineHoldout(decoded=Scores(**dec), refined=Scores(**ref),
+                         by_tolerance={str(k): v for k, v in tried[flow].items()},
+                         by_flow={f: {str(k): v for k, v in by_tol.items()} for f, by_tol in tried.items()})
+    return RefineChoice(chosen=True, on=on, config=cfg, holdout=held)
 
 
 def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
@@ -169,49 +171,49 @@ def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_image
 
 
 def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
-                     tau: float = DEFAULT_TAU, seed: int = 0, refine: bool = True) -> tuple[dict, dict]:
-    """(confidence entry for the manifest, report) for an engine whose bundle has no confidence yet,
-    fitted on its frames as a request with `refine` is served."""
+                     tau: float = DEFAULT_TAU, seed: int = 0, refine: bool = True
+                     ) -> tuple[Confidence | None, Calibration]:
+    """(confidence, how it was fitted) for an engine whose bundle has no confidence yet, fitted on
+    its frames as a request with `refine` is served; the confidence is None when there were too
+    few frames of one kind to fit."""
     if not 0.0 < tau < 1.0:
         raise ValueError(f"tau: {tau!r} is outside (0, 1)")
     sig, ssim, kinds = calibration_frames(engine, holdout_params, holdout_images, seed=seed, refine=refine)
     outcome = (ssim >= tau).astype(float)
-    counts = {k: int(sum(1 for x in kinds if x == k)) for k in sorted(set(kinds))}
-    base = {"tau": tau, "rows": int(len(outcome)), "rows_by_kind": counts,
-            "faithful_share": round(float(outcome.mean()), 4) if len(outcome) else None}
+    base = dict(tau=tau, rows=int(len(outcome)), rows_by_kind={k: kinds.count(k) for k in sorted(set(kinds))},
+                faithful_share=round(float(outcome.mean()), 4) if len(outcome) else None)
     if len(outcome) < 12 or outcome.sum() < 3 or (1 - outcome).sum() < 3:
         # too few frames of one kind to fit: no confidence rather than a made-up one
-        return None, {**base, "status": "not fitted: too few faithful or unfaithful held-out frames"}
+        return None, Calibration(status="not fitted: too few faithful or unfaithful held-out frames", **base)
     names = list(engine.scoring(refine)[0])
     model, report = fit_confidence(sig, outcome, names=names, seed=seed)
-    summary = {**base, "status": "fitted", "ece": report.get("ece"), "auroc": report.get("auroc"),
-               "method": report.get("method"), "report": report}
-    return {"tau": tau, "signals": names, "model": model.to_dict()}, summary
+    summary = Calibration(status="fitted", ece=report.get("ece"), auroc=report.get("auroc"),
+                          method=report.get("method"), report=report, **base)
+    return Confidence(tau=tau, signals=tuple(names), model=model.to_dict()), summary
 
 
 def calibrate_decoded(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
-                      tau: float = DEFAULT_TAU, seed: int = 0) -> tuple[dict | None, dict]:
-    """(confidence entry, report) for a refining model's frames served without detail transfer
-    (a request's refine: false): fitted the same way on the same held-out frames, decoded only,
-    with the signals of a model that does not refine."""
+                      tau: float = DEFAULT_TAU, seed: int = 0) -> tuple[Confidence | None, Calibration]:
+    """(confidence, how it was fitted) for a refining model's frames served without detail
+    transfer (a request's refine: false): fitted the same way on the same held-out frames, decoded
+    only, with the signals of a model that does not refine."""
     return calibrate_engine(engine, holdout_params, holdout_images, tau=tau, seed=seed, refine=False)
 
 
-def fit_serving(result, scene, arrays: dict[str, np.ndarray], *, tau: float = DEFAULT_TAU) -> dict:
-    """Straight after training, from the in-memory model and bank arrays: the route's tube and
-    the confidence model. Returns {"route", "refine", "confidence", "report"} for the bundle."""
+def fit_serving(manifest: Manifest, model: Autoencoder, arrays: dict[str, np.ndarray]) -> Manifest:
+    """Straight after training, from the in-memory model and bank arrays: `manifest` with the
+    route's tube, the detail-transfer choice and the confidence (tau and seed from its training
+    config), and how the confidence was fitted in its metrics."""
     stored = {k: (np.round(np.clip(v, 0, 1) * 255).astype(np.uint8) if "images" in k else v)
               for k, v in arrays.items()}
-    manifest = {"scale": [float(s) for s in result.scale], "resolution": result.model_config.resolution,
-                "channels": result.model_config.channels, "confidence": None}
-    engine = Engine(Bundle(manifest, result.model, scene.space, stored), tube=TUBES[0], refine=False)
-    seed = result.train_config.seed
-    tube, by_tube = choose_tube(engine, arrays["holdout_params"], arrays["holdout_images"], seed=seed)
-    refine = choose_refine(engine, arrays["holdout_params"], arrays["holdout_images"], seed=seed)
-    confidence, report = calibrate_engine(engine, arrays["holdout_params"], arrays["holdout_images"], tau=tau,
-                                          seed=seed)
+    engine = Engine(Bundle(manifest, model, stored), ServingConfig(tube=TUBES[0], refine=False))
+    tau, seed = manifest.train_config.confidence_tau, manifest.train_config.seed
+    held = arrays["holdout_params"], arrays["holdout_images"]
+    tube, by_tube = choose_tube(engine, *held, seed=seed)
+    refine = choose_refine(engine, *held, seed=seed)
+    confidence, report = calibrate_engine(engine, *held, tau=tau, seed=seed)
     if engine.refine is not None:
-        refine["decoded_confidence"], report["decoded_frames"] = calibrate_decoded(
-            engine, arrays["holdout_params"], arrays["holdout_images"], tau=tau, seed=seed)
-    return {"route": {"tube": tube, "holdout_psnr_by_tube": by_tube}, "refine": refine, "confidence": confidence,
-            "report": report}
+        decoded, decoded_report = calibrate_decoded(engine, *held, tau=tau, seed=seed)
+        refine, report = replace(refine, decoded_confidence=decoded), replace(report, decoded_frames=decoded_report)
+    return replace(manifest, route=RouteChoice(tube=tube, holdout_psnr_by_tube=by_tube, chosen=True), refine=refine,
+                   confidence=confidence, metrics=replace(manifest.metrics, calibration=report))

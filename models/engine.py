@@ -9,11 +9,11 @@ taut means: where the chord between two points of the relaxed path stays that cl
 samples, the route takes the chord, since detours through bank nodes cost pacing and sharpness;
 where the chord would leave the tube (a gap, a bend of the manifold) the route keeps the bend.
 
-Projecting every relaxation round back with z <- E(D(z)) is available (project_rounds=True), but
-on the demo model it cost 1.4 dB and three times the time: the collinearity and isometry terms
-keep the latent locally flat, so the cycle residual is reported as a signal instead. Every frame
-carries the settings it shows (code-to-settings head) and a calibrated confidence. Frames are
-synthesized, not captured.
+Projecting every relaxation round back with z <- E(D(z)) is available
+(ServingConfig.project_rounds), but on the demo model it cost 1.4 dB and three times the time:
+the collinearity and isometry terms keep the latent locally flat, so the cycle residual is
+reported as a signal instead. Every frame carries the settings it shows (code-to-settings head)
+and a calibrated confidence. Frames are synthesized, not captured.
 """
 from __future__ import annotations
 
@@ -33,13 +33,13 @@ from . import route as lroute
 from .bundle import Bundle, load_bundle
 from .confidence import ConfidenceModel
 from . import refine as lrefine
+from .manifest import LEGACY_SIGNALS
 from .nets import inference_copy
 from .refine import RefineConfig
 from .train import to_images, to_tensor
 from .triplets import normalised_coords
 
 ROUTES = ("geodesic", "straight")
-LEGACY_SIGNALS = ("cycle", "nearest", "settings", "image_cycle")  # bundles whose confidence names none
 SIGNALS = LEGACY_SIGNALS + ("detail",)  # every signal the engine can compute
 # what a new model's confidence is fitted on: image_cycle would cost a second decode per request
 # and adds nothing the cycle residual does not already carry (see bench/RESULTS.md). "nearest" is
@@ -51,7 +51,38 @@ SIGNALS = LEGACY_SIGNALS + ("detail",)  # every signal the engine can compute
 FITTED_SIGNALS = ("cycle", "settings")
 # a refining model adds how little of the frame could be taken from real images (1 - detail share)
 REFINED_SIGNALS = FITTED_SIGNALS + ("detail",)
-DEFAULT_TUBE = 1.0  # bank spacings: a route keeps within one sample spacing of real samples
+
+
+@dataclass(frozen=True)
+class ServingConfig:
+    """How an engine serves its bundle. `tube` and `refine` None: as the bundle chose at training
+    time (manifest.route, manifest.refine); a value overrides that choice."""
+    graph_k: int | None = None     # neighbours per bank code in the latent graph (None: the graph's k rule)
+    relax_rounds: int = 20         # curve-shortening rounds on a graph path
+    relax_step: float = 0.5        # share of the way to the neighbours' midpoint, per round
+    project_rounds: bool = False   # z <- E(D(z)) after every round (see the module docstring)
+    chart_neighbours: int = 6      # bank samples in the local chart of a settings end
+    attach: int = 3                # bank nodes each end of a route joins
+    tube: float | None = None      # bank spacings around the bank codes a route is pulled taut in
+    refine: bool | None = None     # detail transfer from the nearest real images, on or off
+    refine_threads: int = 2        # threads that refine one answer's frames
+
+    def __post_init__(self) -> None:
+        counts = {"relax_rounds": 0, "chart_neighbours": 1, "attach": 1, "refine_threads": 1}
+        if self.graph_k is not None:
+            counts["graph_k"] = 1
+        for name, lo in counts.items():
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, int) or value < lo:
+                raise ValueError(f"{name}: {value!r} is out of range; allowed integers >= {lo}")
+        for name in ("project_rounds", "refine"):
+            value = getattr(self, name)
+            if not isinstance(value, bool) and not (name == "refine" and value is None):
+                raise ValueError(f"{name}: {value!r} is not allowed; expected true or false")
+        if not 0.0 < self.relax_step <= 1.0:
+            raise ValueError(f"relax_step: {self.relax_step!r} is outside (0, 1]")
+        if self.tube is not None and not self.tube > 0.0:
+            raise ValueError(f"tube: {self.tube!r} is out of range; allowed > 0 bank spacings")
 
 
 @dataclass
@@ -101,29 +132,23 @@ class Answer(FrameCounts):
 
 
 class Engine:
-    def __init__(self, bundle: Bundle, *, graph_k: int | None = None, relax_rounds: int = 20,
-                 relax_step: float = 0.5, project_rounds: bool = False, chart_neighbours: int = 6,
-                 attach: int = 3, tube: float | str | None = "bundle", refine: bool | str = "bundle",
-                 refine_threads: int = 2):
+    def __init__(self, bundle: Bundle, config: ServingConfig = ServingConfig()):
         self.bundle = bundle
+        self.config = config
         self.model = inference_copy(bundle.model)  # the bundle's own model stays as trained
         self.space = bundle.space
         self.manifest = bundle.manifest
         self.scale = bundle.scale
-        self.relax_rounds, self.relax_step, self.attach = relax_rounds, relax_step, attach
-        self.project_rounds = project_rounds
-        # tube radius in bank spacings for pulling routes taut: "bundle" = the radius chosen on the
-        # held-out share at training time (1.0 for bundles without one); None = keep the path
-        self.tube = (bundle.manifest.get("route") or {}).get("tube", DEFAULT_TUBE) if tube == "bundle" else tube
-        self.chart_neighbours = chart_neighbours
-        # detail transfer from the nearest real images: "bundle" = as chosen on the held-out share at
-        # training time (off for bundles without a choice); True / False force it
-        chosen = lrefine.choice(bundle.manifest)
-        on = chosen["on"] if refine == "bundle" else bool(refine)
-        self.refine = RefineConfig.from_dict(chosen["config"]) if on else None
-        self.refine_threads = max(1, int(refine_threads))  # threads that refine one answer's frames
+        # tube radius in bank spacings for pulling routes taut: the one chosen on the held-out share
+        # at training time (DEFAULT_TUBE for bundles without one) unless the config names one
+        self.tube = self.manifest.route.tube if config.tube is None else config.tube
+        # detail transfer from the nearest real images: as chosen on the held-out share at training
+        # time (off for bundles without a choice) unless the config turns it on or off
+        chosen = self.manifest.refine
+        on = chosen.on if config.refine is None else config.refine
+        self.refine = chosen.config if on else None
         pixels = bundle.pixels()  # read for the pruning test only, not kept
-        self.graph = lgraph.build_graph(bundle.codes, k=graph_k, params=bundle.params, space=self.space,
+        self.graph = lgraph.build_graph(bundle.codes, k=config.graph_k, params=bundle.params, space=self.space,
                                         param_scale=self.scale, images=pixels.reshape(len(pixels), -1))
         del pixels
         u, box = normalised_coords(bundle.params, self.space, self.scale)
@@ -131,25 +156,27 @@ class Engine:
         self._settings_tree = cKDTree(u, boxsize=box)
         nn, _ = self.graph.tree.query(self.graph.warped, k=2)
         self.spacing = float(np.median(nn[:, 1]))  # typical code distance between bank neighbours
-        conf = bundle.manifest.get("confidence")
-        self.confidence = ConfidenceModel.from_dict(conf["model"]) if conf else None
-        self.tau = float(conf["tau"]) if conf else None
-        # a model computes only the signals its confidence was fitted on (older bundles: all four)
-        self.signal_names = (tuple(conf.get("signals", LEGACY_SIGNALS)) if conf
+        conf = self.manifest.confidence
+        self.confidence = None if conf is None else conf.predictor()
+        self.tau = None if conf is None else conf.tau
+        # a model computes only the signals its confidence was fitted on
+        self.signal_names = (conf.signals if conf is not None
                              else REFINED_SIGNALS if self.refine is not None else FITTED_SIGNALS)
         # a refining model's second confidence, fitted on its decoded frames: what a request that
         # skips detail transfer (refine=False) is scored with; None for bundles trained without one
-        plain = (bundle.manifest.get("refine") or {}).get("decoded_confidence")
-        self.decoded_confidence = ConfidenceModel.from_dict(plain["model"]) if plain else None
-        self.decoded_signal_names = tuple(plain["signals"]) if plain else FITTED_SIGNALS
-        unknown = sorted(set(self.signal_names) - set(SIGNALS))
-        if unknown:
-            raise ValueError(f"confidence.signals: {unknown} are not signals this engine knows; "
-                             f"expected names from {list(SIGNALS)}")
+        plain = chosen.decoded_confidence
+        self.decoded_confidence = None if plain is None else plain.predictor()
+        self.decoded_signal_names = FITTED_SIGNALS if plain is None else plain.signals
+        for where, names in (("confidence", self.signal_names),
+                             ("refine.decoded_confidence", self.decoded_signal_names)):
+            unknown = sorted(set(names) - set(SIGNALS))
+            if unknown:
+                raise ValueError(f"{where}.signals: {unknown} are not signals this engine knows; "
+                                 f"expected names from {list(SIGNALS)}")
 
     @classmethod
-    def load(cls, path: str | Path, **kw) -> "Engine":
-        return cls(load_bundle(path), **kw)
+    def load(cls, path: str | Path, config: ServingConfig = ServingConfig()) -> "Engine":
+        return cls(load_bundle(path), config)
 
     @cached_property
     def latent_map(self):
@@ -176,7 +203,8 @@ class Engine:
 
     @cached_property
     def _refine_pool(self) -> ThreadPoolExecutor | None:
-        return ThreadPoolExecutor(self.refine_threads, thread_name_prefix="refine") if self.refine_threads > 1 else None
+        threads = self.config.refine_threads
+        return ThreadPoolExecutor(threads, thread_name_prefix="refine") if threads > 1 else None
 
     def render(self, codes: np.ndarray, refine: bool = True) -> tuple[np.ndarray, np.ndarray | None]:
         """The frames as served: decoded, then refined when this model refines and `refine` does
@@ -225,7 +253,7 @@ class Engine:
     def code_of_settings(self, p: np.ndarray) -> np.ndarray:
         """(N, P) settings -> (N, d) codes by a local affine chart over the nearest bank samples."""
         p = np.atleast_2d(np.asarray(p, dtype=np.float64))
-        k = min(self.chart_neighbours, len(self.bundle.codes))
+        k = min(self.config.chart_neighbours, len(self.bundle.codes))
         u = np.mod((self.space.wrap(p) - self.space.lo) / self.scale, self._box)
         dist, idx = self._settings_tree.query(u, k=k)
         out = np.empty((len(p), self.bundle.codes.shape[1]))
@@ -290,11 +318,12 @@ class Engine:
 
     def relaxed_path(self, z_start: np.ndarray, z_end: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """The graph's shortest path between the ends, relaxed (curve shortening), and its nodes."""
-        line, nodes = lsearch.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
+        line, nodes = lsearch.path_with_ends(self.graph, z_start, z_end, attach=self.config.attach, return_nodes=True)
         # midpoints give the relaxation room to round corners between bank nodes
         dense = lroute.at_t(line, np.linspace(0.0, 1.0, 2 * len(line) - 1))
-        return lroute.relax(dense, self.project if self.project_rounds else None,
-                            rounds=self.relax_rounds, step=self.relax_step), nodes
+        cfg = self.config
+        return lroute.relax(dense, self.project if cfg.project_rounds else None,
+                            rounds=cfg.relax_rounds, step=cfg.relax_step), nodes
 
     def pulled_taut(self, line: np.ndarray, tube: float | None = None) -> np.ndarray:
         """`line` pulled taut in the tube (radius `tube`, default self.tube; None: unchanged)."""

@@ -8,6 +8,7 @@ from typing import Callable, TextIO
 import numpy as np
 
 from .bundle import save_bundle
+from .manifest import Manifest, Metrics
 from .nets import ModelConfig
 from .scene import Scene
 from .train import TrainConfig, TrainResult, encode, train
@@ -27,19 +28,16 @@ def bank_arrays(result: TrainResult, scene: Scene) -> dict[str, np.ndarray]:
 
 def train_bundle(scene: Scene, out: str | Path, *, name: str, model_config: ModelConfig | None = None,
                  train_config: TrainConfig | None = None, progress: TextIO | None = sys.stderr,
-                 on_step: Callable[[int, int], None] | None = None, calibrate: bool = True) -> dict:
-    """Train on `scene`; on the held-out share choose the route's tube and calibrate confidence;
-    write a complete bundle to `out`; returns the manifest."""
+                 on_step: Callable[[int, int], None] | None = None, calibrate: bool = True) -> Manifest:
+    """Train on `scene`; on the held-out share choose the route's tube and detail transfer and
+    calibrate confidence; write a complete bundle to `out`; returns its manifest."""
     result = train(scene, model_config, train_config, progress=progress, on_step=on_step)
     arrays = bank_arrays(result, scene)
-    confidence, extra = None, {"scene": scene.name}
-    metrics = dict(result.metrics)
+    manifest = Manifest(name=name, model_config=result.model_config, train_config=result.train_config,
+                        space=scene.space, scale=tuple(float(s) for s in result.scale),
+                        bank_size=len(arrays["codes"]), holdout_size=len(arrays["holdout_codes"]),
+                        metrics=Metrics(fit=dict(result.metrics)), scene=scene.name)
     if calibrate:
         from .calibrate import fit_serving
-        fitted = fit_serving(result, scene, arrays, tau=result.train_config.confidence_tau)
-        confidence, metrics["confidence"] = fitted["confidence"], fitted["report"]
-        extra["route"], extra["refine"] = fitted["route"], fitted["refine"]
-    return save_bundle(out, name=name, model=result.model, model_config=result.model_config,
-                       train_config=result.train_config, space=scene.space, scale=result.scale,
-                       arrays=arrays, metrics=metrics, confidence=confidence,
-                       extra=extra)
+        manifest = fit_serving(manifest, result.model, arrays)
+    return save_bundle(out, manifest, result.model, arrays)

@@ -32,7 +32,6 @@ from __future__ import annotations
 
 from concurrent.futures import Executor
 from dataclasses import asdict, dataclass
-from typing import Mapping
 
 import cv2
 import numpy as np
@@ -66,27 +65,6 @@ class RefineConfig:
         kept = {k: v for k, v in (d or {}).items() if k in names}
         kept.setdefault("flow", "farneback")
         return cls(**kept)
-
-
-def choice(manifest: Mapping) -> dict:
-    """A bundle manifest's detail-transfer choice, read the one way the engine, the API and the
-    CLI use: {"on", "chosen", "config", "holdout", "skippable"}. "chosen" is False for a bundle
-    trained without a choice (it never refines); "holdout" is {"decoded": {psnr, ssim}, "refined":
-    {psnr, ssim, detail}}, the held-out figures behind the choice, or None; "skippable" is True when
-    the bundle holds a confidence fitted on its decoded frames, so a request may skip refinement."""
-    entry = manifest.get("refine")
-    if not isinstance(entry, Mapping) or not entry:
-        return {"on": False, "chosen": False, "config": None, "holdout": None, "skippable": False}
-    held = entry.get("holdout") or {}
-    scores = None
-    if held.get("decoded") and held.get("refined"):
-        dec, ref = held["decoded"], held["refined"]
-        scores = {"decoded": {"psnr": dec.get("psnr"), "ssim": dec.get("ssim")},
-                  "refined": {"psnr": ref.get("psnr"), "ssim": ref.get("ssim"), "detail": ref.get("detail")}}
-    config = entry.get("config")
-    return {"on": bool(entry.get("on", False)), "chosen": True,
-            "config": dict(config) if isinstance(config, Mapping) else None, "holdout": scores,
-            "skippable": bool(entry.get("decoded_confidence"))}
 
 
 _CHANNELS = 128  # channels per OpenCV call (OpenCV 5 takes at most 128; 4.x, 512)

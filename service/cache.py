@@ -13,6 +13,7 @@ from typing import Callable
 
 from ..models.bundle import read_manifest
 from ..models.engine import Engine
+from ..models.manifest import Manifest
 from ..models.params import ParamSpace
 
 from .registry import ModelVersion, Registry, RegistryError
@@ -32,7 +33,7 @@ class ModelCache:
         self._engines: OrderedDict[tuple[str, int, str], Engine] = OrderedDict()
         self._key_locks: dict[tuple[str, int, str], threading.Lock] = {}
         self._versions: dict[tuple[str, int | None], ModelVersion] = {}
-        self._manifests: dict[tuple[str, int, str], dict] = {}
+        self._manifests: dict[tuple[str, int, str], Manifest] = {}
         self._generation: int | None = None
         self.loads = 0  # engines built since start (a reload per request would show here)
 
@@ -82,8 +83,8 @@ class ModelCache:
                 self._key_locks.pop(key, None)
         return engine
 
-    def manifest(self, entry: ModelVersion) -> dict:
-        """The bundle's manifest (JSON only, no weights), memoised per version."""
+    def manifest(self, entry: ModelVersion) -> Manifest:
+        """The bundle's manifest, parsed (JSON only, no weights), memoised per version."""
         key = (entry.name, entry.version, entry.hash)
         with self._lock:
             hit = self._manifests.get(key)
@@ -97,7 +98,7 @@ class ModelCache:
 
     def space(self, entry: ModelVersion) -> ParamSpace:
         """The model's parameter space, without loading its weights."""
-        return ParamSpace.from_list(self.manifest(entry)["space"])
+        return self.manifest(entry).space
 
     def _drop_stale(self, registry: Registry) -> None:
         # rare (after a publish or delete): drop engines whose version was deleted or replaced

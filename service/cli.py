@@ -46,23 +46,21 @@ def cmd_train(args) -> int:
     return EXIT_OK
 
 
-def refine_line(manifest: dict) -> str:
+def refine_line(manifest) -> str:
     """Whether a model refines its frames with detail from real training images, and the held-out
-    in-betweens behind that choice (decoded -> refined), from its bundle manifest."""
-    from ..models.refine import RefineConfig, choice
-
-    chosen = choice(manifest)
-    if not chosen["chosen"]:
+    in-betweens behind that choice (decoded -> refined), from its bundle manifest (a Manifest)."""
+    chosen = manifest.refine
+    if not chosen.chosen:
         return "detail transfer off (no choice made at training time)"
-    text = "detail transfer " + ("on" if chosen["on"] else "off")
-    if chosen["on"] and chosen["config"]:
-        text += f" (flow {RefineConfig.from_dict(chosen['config']).flow})"
-    if chosen["holdout"]:
-        dec, ref = chosen["holdout"]["decoded"], chosen["holdout"]["refined"]
-        text += (f"; held-out in-betweens PSNR {dec['psnr']:.2f} -> {ref['psnr']:.2f} dB, "
-                 f"SSIM {dec['ssim']:.4f} -> {ref['ssim']:.4f} when refined")
-        if ref.get("detail") is not None:
-            text += f", {100 * ref['detail']:.0f} % of pixels from real images"
+    text = "detail transfer " + ("on" if chosen.on else "off")
+    if chosen.on:
+        text += f" (flow {chosen.config.flow})"
+    if chosen.holdout is not None:
+        dec, ref = chosen.holdout.decoded, chosen.holdout.refined
+        text += (f"; held-out in-betweens PSNR {dec.psnr:.2f} -> {ref.psnr:.2f} dB, "
+                 f"SSIM {dec.ssim:.4f} -> {ref.ssim:.4f} when refined")
+        if ref.detail is not None:
+            text += f", {100 * ref.detail:.0f} % of pixels from real images"
     return text
 
 
@@ -75,11 +73,12 @@ def cmd_models(args) -> int:
         print(f"no models in {reg.root}")
     for row in rows:
         latest = reg.get(row.name)
-        m = latest.metrics
+        manifest = read_manifest(latest.path)
+        fit = manifest.metrics.fit
         print(f"{row.name}@{latest.version}  versions {row.n_versions}  created {latest.created}  "
-              f"holdout PSNR {m.get('holdout_psnr', float('nan')):.2f} dB  "
-              f"SSIM {m.get('holdout_ssim', float('nan')):.4f}")
-        print(f"  {refine_line(read_manifest(latest.path))}")
+              f"holdout PSNR {fit.get('holdout_psnr', float('nan')):.2f} dB  "
+              f"SSIM {fit.get('holdout_ssim', float('nan')):.4f}")
+        print(f"  {refine_line(manifest)}")
     return EXIT_OK
 
 
@@ -110,7 +109,7 @@ def parse_end(text: str, engine) -> "Endpoint":
             img.load()
             native = native_channels(img)
             if native != engine.channels:
-                raise UsageError(f"end {text!r}: image has {native} channel(s); model {engine.manifest['name']!r} "
+                raise UsageError(f"end {text!r}: image has {native} channel(s); model {engine.manifest.name!r} "
                                  f"expects {engine.channels}")
             return Endpoint(image=image_to_array(img, engine.resolution, engine.channels))
     except (OSError, SyntaxError) as exc:

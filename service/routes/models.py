@@ -10,7 +10,6 @@ from starlette.concurrency import run_in_threadpool
 
 from ...models.engine import Endpoint
 from ...models.params import ParamSpace
-from ...models.refine import choice as refine_choice
 
 from ..cache import ModelCache
 from ..deps import ApiKeyDep, ModelName, Services, ServicesDep, note
@@ -113,24 +112,12 @@ def get_model(name: ModelName, services: ServicesDep,
     versions = registry.versions(name)
     chosen = registry.get(name, version)
     manifest = services.cache.manifest(chosen)
-    conf = manifest.get("confidence")
-    report = chosen.metrics.get("confidence") if isinstance(chosen.metrics.get("confidence"), dict) else {}
-    calibration = {
-        "fitted": conf is not None,
-        "tau": (conf or {}).get("tau", report.get("tau")),
-        "method": ((conf or {}).get("model") or {}).get("calibrator", {}).get("method") or report.get("method"),
-        "signals": list((conf or {}).get("signals") or []),
-        "ece": report.get("ece"), "auroc": report.get("auroc"),
-        "status": report.get("status") or ("fitted" if conf else "not calibrated"),
-    }
     return ModelOut(name=name, latest_version=versions[-1].version, version=chosen.version,
                     versions=[{"version": v.version, "created": v.created, "hash": v.hash, "metrics": v.metrics}
                               for v in versions],
-                    parameters=[{"name": p["name"], "unit": p.get("unit", ""), "min": p["min"], "max": p["max"],
-                                 "periodic": bool(p.get("periodic", False))} for p in manifest["space"]],
-                    resolution=int(manifest["resolution"]),
-                    channels=int(manifest["channels"]), metrics=chosen.metrics, calibration=calibration,
-                    refine=refine_choice(manifest))
+                    parameters=manifest.space.to_list(), resolution=manifest.resolution, channels=manifest.channels,
+                    metrics=chosen.metrics, calibration=manifest.calibration_summary(),
+                    refine=manifest.refine.summary())
 
 
 @router.delete("/models/{name}/{version}", operation_id="delete_model_version", response_model=DeletedOut,

@@ -2,7 +2,7 @@ import numpy as np
 import pytest
 from scipy.spatial import cKDTree
 
-from geotween.models.engine import Endpoint
+from geotween.models.engine import Endpoint, ServingConfig
 from geotween.models.render import DEMO_SPACE
 
 
@@ -95,29 +95,28 @@ def test_image_ends_and_fill(small_engine, small_scene):
 
 
 def test_calibration_is_stored_with_held_out_metrics(small_engine):
-    conf = small_engine.manifest["confidence"]
-    assert conf["tau"] == 0.85
-    report = small_engine.manifest["metrics"]["confidence"]
-    assert report["status"] == "fitted"
-    assert report["rows"] >= 50
-    assert 0.0 <= report["ece"] <= 1.0 and 0.5 <= report["auroc"] <= 1.0
+    assert small_engine.manifest.confidence.tau == 0.85
+    report = small_engine.manifest.metrics.calibration
+    assert report.status == "fitted"
+    assert report.rows >= 50
+    assert 0.0 <= report.ece <= 1.0 and 0.5 <= report.auroc <= 1.0
 
 
 def test_tube_is_chosen_on_the_held_out_share(small_engine):
     from geotween.models.calibrate import TUBES
 
-    route = small_engine.manifest["route"]
-    scores = {float(k): v for k, v in route["holdout_psnr_by_tube"].items()}
+    route = small_engine.manifest.route
+    scores = {float(k): v for k, v in route.holdout_psnr_by_tube.items()}
     assert sorted(scores) == sorted(TUBES)
-    assert route["tube"] == max(scores, key=lambda c: (scores[c], -c))
-    assert small_engine.tube == route["tube"]
+    assert route.tube == max(scores, key=lambda c: (scores[c], -c))
+    assert small_engine.tube == route.tube
 
 
 def test_a_new_model_computes_only_the_signals_it_was_fitted_on(small_engine):
     from geotween.models.engine import FITTED_SIGNALS, REFINED_SIGNALS
 
-    want = REFINED_SIGNALS if small_engine.manifest["refine"]["on"] else FITTED_SIGNALS
-    assert small_engine.manifest["confidence"]["signals"] == list(want)
+    want = REFINED_SIGNALS if small_engine.manifest.refine.on else FITTED_SIGNALS
+    assert small_engine.manifest.confidence.signals == want
     ans = small_engine.between(P(30, 30), P(120, 50), frames=3)
     assert all(set(f.signals) == set(want) for f in ans.frames)
 
@@ -126,7 +125,8 @@ def test_a_refining_model_scores_how_much_detail_it_took(small_bundle):
     # the detail signal is 1 - the frame's detail share; an unrefined frame scores 1 (nothing taken)
     from geotween.models.engine import REFINED_SIGNALS, Engine
 
-    on, off = Engine.load(small_bundle, refine=True), Engine.load(small_bundle, refine=False)
+    on = Engine.load(small_bundle, ServingConfig(refine=True))
+    off = Engine.load(small_bundle, ServingConfig(refine=False))
     for engine in (on, off):  # the signals alone: no confidence model fitted on them here
         engine.signal_names, engine.confidence = REFINED_SIGNALS, None
     for engine in (on, off):
@@ -137,49 +137,52 @@ def test_a_refining_model_scores_how_much_detail_it_took(small_bundle):
 
 
 def test_older_bundles_with_four_signals_still_score(small_bundle):
+    from dataclasses import replace
+
     from geotween.models.bundle import load_bundle
     from geotween.models.confidence import fit_confidence
     from geotween.models.engine import LEGACY_SIGNALS as SIGNALS, Engine
+    from geotween.models.manifest import Confidence
 
     bundle = load_bundle(small_bundle)
     rng = np.random.default_rng(0)
     sig = rng.random((300, len(SIGNALS)))
     model, _ = fit_confidence(sig, (sig.sum(1) < 2).astype(float), names=list(SIGNALS), seed=0)
-    bundle.manifest["confidence"] = {"tau": 0.9, "signals": list(SIGNALS), "model": model.to_dict()}
+    conf = Confidence(tau=0.9, signals=SIGNALS, model=model.to_dict())
+    bundle.manifest = replace(bundle.manifest, confidence=conf)
     engine = Engine(bundle)
     ans = engine.between(P(30, 30), P(120, 50), frames=3)
     assert all(set(f.signals) == set(SIGNALS) and 0 <= f.confidence <= 1 for f in ans.frames)
-    bundle.manifest["confidence"]["signals"] = ["cycle", "wobble"]
+    bundle.manifest = replace(bundle.manifest, confidence=replace(conf, signals=("cycle", "wobble")))
     with pytest.raises(ValueError, match="wobble"):
         Engine(bundle)
 
 
 def test_a_refining_model_keeps_a_confidence_for_its_decoded_frames(small_engine):
     # fitted at training time only when the model refines: what refine=False requests are scored by
-    refine = small_engine.manifest["refine"]
-    assert ("decoded_confidence" in refine) == bool(refine["on"])
-    if refine["on"]:
+    refine = small_engine.manifest.refine
+    assert (refine.decoded_confidence is not None) == refine.on
+    if refine.on:
         from geotween.models.engine import FITTED_SIGNALS
 
-        assert refine["decoded_confidence"]["signals"] == list(FITTED_SIGNALS)
-        assert small_engine.manifest["metrics"]["confidence"]["decoded_frames"]["status"] == "fitted"
+        assert refine.decoded_confidence.signals == FITTED_SIGNALS
+        assert small_engine.manifest.metrics.calibration.decoded_frames.status == "fitted"
 
 
 @pytest.fixture(scope="module")
 def skippable(small_bundle):
     """The small model forced to refine, with a confidence fitted on its decoded frames."""
     from geotween.models.calibrate import calibrate_decoded
-    from geotween.models.confidence import ConfidenceModel
     from geotween.models.engine import Engine
 
-    engine = Engine.load(small_bundle, refine=True)
+    engine = Engine.load(small_bundle, ServingConfig(refine=True))
     before = engine.refine, engine.signal_names
     held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
     entry, report = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
-    assert report["status"] == "fitted" and entry["signals"] == ["cycle", "settings"]
+    assert report.status == "fitted" and entry.signals == ("cycle", "settings")
     assert (engine.refine, engine.signal_names) == before  # restored after fitting
-    engine.decoded_confidence = ConfidenceModel.from_dict(entry["model"])
-    engine.decoded_signal_names = tuple(entry["signals"])
+    engine.decoded_confidence = entry.predictor()
+    engine.decoded_signal_names = entry.signals
     return engine
 
 
@@ -200,13 +203,13 @@ def test_refine_false_serves_the_decoded_frames_scored_by_their_own_confidence(s
 def test_refine_false_is_refused_when_no_decoded_frame_confidence_was_fitted(small_bundle):
     from geotween.models.engine import Engine
 
-    engine = Engine.load(small_bundle, refine=True)
+    engine = Engine.load(small_bundle, ServingConfig(refine=True))
     engine.decoded_confidence = None
     if engine.confidence is None:
         pytest.skip("the small model has no confidence")
     with pytest.raises(ValueError, match="refine: this model version has no confidence"):
         engine.between(P(30, 30), P(150, 60), frames=3, refine=False)
-    plain = Engine.load(small_bundle, refine=False)  # a model that does not refine: refine=False changes nothing
+    plain = Engine.load(small_bundle, ServingConfig(refine=False))  # not refining: refine=False changes nothing
     a, b = plain.between(P(30, 30), P(150, 60), frames=3), plain.between(P(30, 30), P(150, 60), frames=3, refine=False)
     assert [f.confidence for f in a.frames] == [f.confidence for f in b.frames]
 
@@ -214,27 +217,27 @@ def test_refine_false_is_refused_when_no_decoded_frame_confidence_was_fitted(sma
 def test_training_a_refining_model_stores_both_confidences(small_scene, tmp_path, monkeypatch):
     # the small model does not win with refinement on its own; force the choice on to see what
     # training then stores: the confidence of refined frames and the one of decoded frames
+    from dataclasses import replace
+
     from conftest import SMALL_TRAIN
 
     from geotween.models import calibrate
     from geotween.models.engine import REFINED_SIGNALS, Engine
     from geotween.models.pipeline import train_bundle
-    from geotween.models.refine import RefineConfig
     from geotween.models.train import TrainConfig
 
     real = calibrate.choose_refine
 
     def forced(engine, *args, **kw):
-        entry = real(engine, *args, **kw)
-        entry["on"] = True
-        engine.refine, engine.signal_names = RefineConfig.from_dict(entry["config"]), REFINED_SIGNALS
+        entry = replace(real(engine, *args, **kw), on=True)
+        engine.refine, engine.signal_names = entry.config, REFINED_SIGNALS
         return entry
 
     monkeypatch.setattr(calibrate, "choose_refine", forced)
     manifest = train_bundle(small_scene, tmp_path, name="forced", train_config=TrainConfig(**SMALL_TRAIN),
                             progress=None)
-    assert manifest["confidence"]["signals"] == list(REFINED_SIGNALS)
-    assert manifest["refine"]["decoded_confidence"]["signals"] == ["cycle", "settings"]
+    assert manifest.confidence.signals == REFINED_SIGNALS
+    assert manifest.refine.decoded_confidence.signals == ("cycle", "settings")
     engine = Engine.load(tmp_path)
     assert engine.refine is not None and engine.decoded_confidence is not None
     fast = engine.between(P(30, 30), P(150, 60), frames=3, refine=False)

@@ -5,7 +5,7 @@ import pytest
 from scipy.ndimage import gaussian_filter
 
 from geotween.models import refine as lrefine
-from geotween.models.engine import Endpoint, Engine
+from geotween.models.engine import Endpoint, Engine, ServingConfig
 from geotween.models.metrics import psnr, psnr_batch
 from geotween.models.render import render
 
@@ -68,7 +68,7 @@ def test_textured_scene_gets_its_detail_back_from_neighbouring_views():
 
 def test_engine_refinement_on_the_lamp_scene_stays_within_a_small_tolerance(small_engine, small_scene):
     # the trained tiny model's decoded frames against the true renders, refined or not
-    on = Engine(small_engine.bundle, refine=True)
+    on = Engine(small_engine.bundle, ServingConfig(refine=True))
     assert on.refine is not None
     p0, p1 = np.array([0.0, 30.0]), np.array([90.0, 50.0])
     worst = np.inf

@@ -19,7 +19,7 @@ def test_a_128px_model_trains_serves_and_evaluates(tmp_path):
     scene = tiny_demo_scene(size=128, az_step=120.0, elevations=(20.0, 45.0, 70.0))
     manifest = train_bundle(scene, tmp_path / "bundle", name="tile-128",
                             train_config=TrainConfig(steps=6, batch_triplets=2, extra_images=2), progress=None)
-    assert manifest["resolution"] == 128 and manifest["model_config"]["resolution"] == 128
+    assert manifest.resolution == 128 and manifest.model_config.resolution == 128
     engine = Engine.load(tmp_path / "bundle")
     ans = engine.between(Endpoint(params={"lamp_azimuth": 0, "lamp_elevation": 20}),
                          Endpoint(params={"lamp_azimuth": 120, "lamp_elevation": 70}), frames=3)

@@ -3,7 +3,7 @@ scikit-image wheel) seen through a window that pans and zooms; truth frames are 
 import pytest
 
 from geotween.models.calibrate import REFINE_FLOWS, pick_refine
-from geotween.models.engine import Endpoint, Engine
+from geotween.models.engine import Endpoint, Engine, ServingConfig
 from geotween.models.evaluate import evaluate, format_table
 from geotween.models.photo import write_photo_scene
 from geotween.models.pipeline import train_bundle
@@ -30,7 +30,7 @@ def photo_model(tmp_path_factory):
 
 def test_tiny_model_beats_cross_dissolve_and_reports_flow_warping(photo_model):
     bundle, truth = photo_model
-    report = evaluate(Engine.load(bundle, refine=False), truth)
+    report = evaluate(Engine.load(bundle, ServingConfig(refine=False)), truth)
     m = report["methods"]
     assert m["geodesic"]["psnr"] > m["dissolve"]["psnr"] + 1.0, format_table(report)
     assert m["geodesic"]["ssim"] > m["dissolve"]["ssim"], format_table(report)
@@ -40,8 +40,8 @@ def test_tiny_model_beats_cross_dissolve_and_reports_flow_warping(photo_model):
 
 def test_detail_transfer_improves_the_textured_scene(photo_model):
     bundle, truth = photo_model
-    off = evaluate(Engine.load(bundle, refine=False), truth)["methods"]
-    on = evaluate(Engine.load(bundle, refine=True), truth)["methods"]
+    off = evaluate(Engine.load(bundle, ServingConfig(refine=False)), truth)["methods"]
+    on = evaluate(Engine.load(bundle, ServingConfig(refine=True)), truth)["methods"]
     assert on["geodesic"]["psnr"] > off["geodesic"]["psnr"] + 0.3, (off["geodesic"], on["geodesic"])
     # the decoded frames before refinement are reported beside the refined ones, and equal the unrefined run
     assert on["geodesic_decoded"]["psnr"] == pytest.approx(off["geodesic"]["psnr"], abs=1e-6)
@@ -50,21 +50,20 @@ def test_detail_transfer_improves_the_textured_scene(photo_model):
 def test_the_held_out_choice_is_recorded_and_followed(photo_model):
     bundle, _ = photo_model
     engine = Engine.load(bundle)
-    chosen = engine.manifest["refine"]
-    held = chosen["holdout"]
-    assert set(held) >= {"decoded", "refined", "by_tolerance", "by_flow"}
+    chosen = engine.manifest.refine
+    held, cfg = chosen.holdout, chosen.config
+    assert held.by_tolerance and held.by_flow
     # every flow setting was scored, and the recorded choice is the rule's on those scores
-    assert list(held["by_flow"]) == list(REFINE_FLOWS)
-    scores = {f: {float(k): v for k, v in by_tol.items()} for f, by_tol in held["by_flow"].items()}
-    assert pick_refine(scores) == (chosen["config"]["flow"], chosen["config"]["tolerance"])
-    assert held["refined"] == held["by_flow"][chosen["config"]["flow"]][str(chosen["config"]["tolerance"])]
-    wins = held["refined"]["psnr"] >= held["decoded"]["psnr"] + 0.2 and held["refined"]["ssim"] >= held["decoded"]["ssim"]
-    assert chosen["on"] == wins and (engine.refine is not None) == wins
+    assert list(held.by_flow) == list(REFINE_FLOWS)
+    scores = {f: {float(k): v for k, v in by_tol.items()} for f, by_tol in held.by_flow.items()}
+    assert pick_refine(scores) == (cfg.flow, cfg.tolerance)
+    assert held.refined.to_dict() == held.by_flow[cfg.flow][str(cfg.tolerance)]
+    wins = held.refined.psnr >= held.decoded.psnr + 0.2 and held.refined.ssim >= held.decoded.ssim
+    assert chosen.on == wins and (engine.refine is not None) == wins
     ans = engine.between(Endpoint(params={"pan": 0.1, "zoom": 0.2}), Endpoint(params={"pan": 0.6, "zoom": 0.7}),
                          frames=4)
     if wins:
-        assert engine.refine.tolerance == chosen["config"]["tolerance"]
-        assert engine.refine.flow == chosen["config"]["flow"]
+        assert engine.refine == cfg
         assert all(0.0 <= f.detail <= 1.0 for f in ans.frames)
     else:
         assert all(f.detail is None for f in ans.frames)

@@ -72,9 +72,9 @@ def test_bundle_round_trip(tiny_scene, tmp_path):
     manifest = train_bundle(tiny_scene, tmp_path / "b", name="tiny", train_config=TrainConfig(steps=10, **FAST),
                             progress=None)
     bundle = load_bundle(tmp_path / "b")
-    assert bundle.manifest["hash"] == manifest["hash"] == read_manifest(tmp_path / "b")["hash"]
+    assert bundle.manifest.hash == manifest.hash == read_manifest(tmp_path / "b").hash
     assert bundle.space == tiny_scene.space
-    assert bundle.manifest["resolution"] == 16 and bundle.manifest["channels"] == 1
+    assert bundle.manifest.resolution == 16 and bundle.manifest.channels == 1
     # identical codes from the reloaded model, and the bank holds exactly the training samples
     codes = encode(bundle.model, bundle.images())
     assert np.allclose(codes, bundle.codes, atol=1e-4)
@@ -85,11 +85,11 @@ def test_bundle_round_trip(tiny_scene, tmp_path):
         bundle.pixels("codes")
     n_bank, n_hold = len(bundle.codes), len(bundle.arrays["holdout_codes"])
     assert n_bank + n_hold == len(tiny_scene)
-    assert manifest["metrics"]["holdout_psnr"] > 0
+    assert manifest.metrics.fit["holdout_psnr"] > 0
     # the hash names the content: retraining with the same seed reproduces it
     again = train_bundle(tiny_scene, tmp_path / "c", name="tiny", train_config=TrainConfig(steps=10, **FAST),
                          progress=None)
-    assert again["hash"] == manifest["hash"]
+    assert again.hash == manifest.hash
 
 
 def test_broken_bundles_are_refused(tmp_path):

@@ -8,6 +8,7 @@ import struct
 import time
 import zipfile
 import zlib
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -18,7 +19,7 @@ from prometheus_client.parser import text_string_to_metric_families
 from pydantic import ValidationError
 
 from geotween.models.confidence import fit_confidence
-from geotween.models.engine import FITTED_SIGNALS as SIGNALS, Endpoint, Engine
+from geotween.models.engine import FITTED_SIGNALS as SIGNALS, Endpoint, Engine, ServingConfig
 from geotween.models.render import render_many
 from geotween.service.api import create_app
 from geotween.service.registry import Registry
@@ -497,14 +498,13 @@ def with_refine(src: Path, folder: Path, *, on: bool) -> dict:
     from geotween.models.calibrate import choose_refine
 
     shutil.copytree(src, folder, dirs_exist_ok=True)
-    engine = Engine.load(src, refine=False)
+    engine = Engine.load(src, ServingConfig(refine=False))
     holdout = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
-    entry = choose_refine(engine, engine.bundle.arrays["holdout_params"], holdout)
-    entry["on"] = on
-    if on:  # a 10-step model's frames are far from any real image: a wide tolerance lets them take real pixels
-        entry["config"]["tolerance"] = 0.3
+    chosen = choose_refine(engine, engine.bundle.arrays["holdout_params"], holdout)
+    # a 10-step model's frames are far from any real image: a wide tolerance lets them take real pixels
+    chosen = replace(chosen, on=on, config=replace(chosen.config, tolerance=0.3) if on else chosen.config)
     manifest = json.loads((folder / "manifest.json").read_text())
-    manifest["refine"] = entry
+    manifest["refine"] = entry = chosen.to_dict()
     (folder / "manifest.json").write_text(json.dumps(manifest))
     return entry
 
@@ -548,7 +548,7 @@ def test_a_refining_model_gives_every_frame_its_detail_share(refine_client, refi
     path = reg.get("tile-fine").path
     ends = Endpoint(params=body["start"]["params"]), Endpoint(params=body["end"]["params"])
     served = Engine.load(path).between(*ends, frames=4, route="straight")            # as the bundle chose
-    decoded = Engine.load(path, refine=False).between(*ends, frames=4, route="straight")
+    decoded = Engine.load(path, ServingConfig(refine=False)).between(*ends, frames=4, route="straight")
     assert shares == pytest.approx([f.detail for f in served.frames], abs=1e-9)
     for got, ref, plain in zip(d["frames"], served.frames, decoded.frames):
         img = decode_frame(got["image"]).astype(int)
@@ -585,7 +585,7 @@ def skip_client(tmp_path_factory, small_bundle):
     from geotween.models.calibrate import calibrate_decoded
 
     reg = Registry.open(tmp_path_factory.mktemp("skip-registry"))
-    engine = Engine.load(small_bundle, refine=True)
+    engine = Engine.load(small_bundle, ServingConfig(refine=True))
     held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
     decoded, _ = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
     assert decoded is not None
@@ -593,11 +593,11 @@ def skip_client(tmp_path_factory, small_bundle):
     def publish(folder, extra):
         shutil.copytree(small_bundle, folder, dirs_exist_ok=True)
         manifest = json.loads((folder / "manifest.json").read_text())
-        manifest["refine"] = {**(manifest.get("refine") or {}), "on": True, **extra}
+        manifest["refine"] = {**manifest["refine"], "on": True, "decoded_confidence": None, **extra}
         (folder / "manifest.json").write_text(json.dumps(manifest))
 
     reg.publish("cal", lambda f: publish(f, {}))
-    reg.publish("cal-fast", lambda f: publish(f, {"decoded_confidence": decoded}))
+    reg.publish("cal-fast", lambda f: publish(f, {"decoded_confidence": decoded.to_dict()}))
     with TestClient(create_app(Settings(registry=reg.root, **LIMITS))) as c:
         yield c, reg
 
@@ -610,7 +610,7 @@ def test_refine_false_answers_decoded_frames_with_their_own_confidence(skip_clie
     fast = client.post("/v1/models/cal-fast/between", json={**body, "refine": False})
     assert fast.status_code == 200, fast.text
     full = client.post("/v1/models/cal-fast/between", json=body).json()
-    plain = Engine.load(reg.get("cal-fast").path, refine=False)
+    plain = Engine.load(reg.get("cal-fast").path, ServingConfig(refine=False))
     ends = Endpoint(params=body["start"]["params"]), Endpoint(params=body["end"]["params"])
     want = Engine.load(reg.get("cal-fast").path).between(*ends, frames=4, refine=False)
     for got, ref, dec in zip(fast.json()["frames"], want.frames, plain.between(*ends, frames=4).frames):

@@ -105,14 +105,14 @@ def skippable_copy(src: Path, folder: Path) -> None:
     import numpy as np
 
     from geotween.models.calibrate import calibrate_decoded
-    from geotween.models.engine import Engine
+    from geotween.models.engine import Engine, ServingConfig
 
     shutil.copytree(src, folder, dirs_exist_ok=True)
-    engine = Engine.load(src, refine=True)
+    engine = Engine.load(src, ServingConfig(refine=True))
     held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
     decoded, _ = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
     manifest = json.loads((folder / "manifest.json").read_text())
-    manifest["refine"] = {**(manifest.get("refine") or {}), "on": True, "decoded_confidence": decoded}
+    manifest["refine"] = {**manifest["refine"], "on": True, "decoded_confidence": decoded.to_dict()}
     (folder / "manifest.json").write_text(json.dumps(manifest))
 
 
