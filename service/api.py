@@ -221,7 +221,7 @@ async def _on_domain(request: Request, exc: Exception) -> JSONResponse:
 # -- the app ------------------------------------------------------------------------------------
 def create_app(settings: Settings | None = None) -> FastAPI:
     """The geotween HTTP app; `settings` default to the GEOTWEEN_* environment."""
-    from .routes import jobs, maps, models, ops, trainings, viewer
+    from .routes import common, jobs, maps, models, ops, trainings, viewer
 
     settings = settings or Settings()
 
@@ -258,4 +258,5 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.add_exception_handler(kind, _on_domain)
     for module in (ops, models, maps, jobs, trainings, viewer):
         app.include_router(module.router)
+    common.add_file_schemas(app)  # the ZIP answers' manifest.json
     return app

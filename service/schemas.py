@@ -6,6 +6,8 @@ checked by the routes, which name the setting in the message.
 """
 from __future__ import annotations
 
+import base64
+import io
 from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
@@ -15,6 +17,12 @@ DETAIL = ("share of the frame's pixels, 0 to 1, carried over from real training 
           "the nearest captured images are moved onto the frame along an estimated optical flow and kept only "
           "where they agree with the decoded frame. The frame is still synthesized, not captured. null when the "
           "model does not refine (chosen per model at training time)")
+CONFIDENCE = ("calibrated probability that SSIM vs the true view >= tau; null when the model has no "
+              "calibration (every frame is then accepted)")
+FILE_PATTERN = r"^(frame|target)_[0-9]{4,}\.png$"  # between frames, fill frames; 1-based index, 4 digits at least
+FILE = ("name of the frame's PNG beside the manifest: frame_0001.png for between frames, target_0001.png for "
+        "fill frames (the 1-based index, four digits at least); null when the frame was not written (the "
+        "command line writes rejected frames only with --keep-rejected, fill never)")
 REFINE_REQUEST = ("detail transfer on a model that refines (see GET /v1/models/{name}, refine.on). false: the "
                   "decoded frames only, faster and softer, each scored by the model's confidence fitted on "
                   "decoded frames (refused with 422 when the model has none: refine.skippable). No effect on a "
@@ -77,13 +85,36 @@ class BetweenRequest(_Request):
         {"start": {"image": "iVBORw0KGgo...(base64 PNG)"}, "end": {"params": _EXAMPLE_PARAMS_B}, "frames": 4}]})
 
 
-class FrameOut(_Out):
-    """One synthesized frame: decoded from a latent code, refined by detail transfer when the model refines."""
-    index: int = Field(description="1-based position on the route")
-    t: float = Field(description="fraction of the route's length, i / (frames + 1)")
-    image: str = Field(description="base64 PNG at the model's resolution")
-    confidence: float | None = Field(description="calibrated probability that SSIM vs the true view >= tau; "
-                                                 "null when the model has no calibration")
+class _Picture:
+    """Decoding helpers for a frame that carries its picture as base64 PNG (`image`)."""
+    image: str
+
+    def png(self) -> bytes:
+        """The frame's PNG file, bytes as the service encoded them."""
+        return base64.b64decode(self.image)
+
+    def pil(self):
+        """The frame as a PIL image (mode L or RGB)."""
+        from PIL import Image
+
+        with Image.open(io.BytesIO(self.png())) as img:
+            img.load()
+            return img.copy()
+
+    def array(self):
+        """The frame as a numpy array (H, W, C), float32 in [0, 1]."""
+        import numpy as np
+
+        img = self.pil()
+        arr = np.asarray(img.convert("L" if img.mode in ("L", "I", "I;16") else "RGB"), dtype=np.float32) / 255.0
+        return arr[..., None] if arr.ndim == 2 else arr
+
+
+class _BetweenFrame(_Out):
+    """What a between frame says, however its picture travels."""
+    index: int = Field(ge=1, description="1-based position on the route")
+    t: float = Field(ge=0.0, le=1.0, description="fraction of the route's length, i / (frames + 1)")
+    confidence: float | None = Field(ge=0.0, le=1.0, description=CONFIDENCE)
     accepted: bool
     params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
     code: list[float] | None = Field(None, description="the frame's latent code (place it on the latent map "
@@ -91,19 +122,43 @@ class FrameOut(_Out):
     detail: float | None = Field(ge=0.0, le=1.0, description=DETAIL)
 
 
-class BetweenOut(_Out):
+class FrameOut(_Picture, _BetweenFrame):
+    """One synthesized frame: decoded from a latent code, refined by detail transfer when the model refines."""
+    image: str = Field(description="base64 PNG at the model's resolution")
+
+
+class FrameFileOut(_BetweenFrame):
+    """One frame of a manifest.json (a ZIP answer, or the folder `geotween between --out` writes): the
+    frame as in FrameOut, its picture a PNG file beside the manifest."""
+    file: str | None = Field(pattern=FILE_PATTERN, description=FILE)
+
+
+class _BetweenHead(_Out):
     model: str
-    version: int
-    route: str
-    frames: list[FrameOut]
-    accepted: int
-    rejected: int
+    version: int = Field(ge=1)
+    route: Literal["geodesic", "straight"]
+    frames: list  # each answer names its frame model
+    accepted: int = Field(ge=0)
+    rejected: int = Field(ge=0)
     start_params: dict[str, float]
     end_params: dict[str, float]
     start_code: list[float] | None = Field(None, description="latent code of the start")
     end_code: list[float] | None = Field(None, description="latent code of the end")
     synthesized: Literal[True] = True
     notice: str = NOTICE
+
+
+class BetweenOut(_BetweenHead):
+    frames: list[FrameOut]
+
+
+class BetweenManifestOut(_BetweenHead):
+    """manifest.json of a between answer as files: in the ZIP answer (Accept: application/zip) and in the
+    folder `geotween between --out` writes. The JSON answer with each frame's `image` replaced by `file`."""
+    frames: list[FrameFileOut]
+    latent_map: str | None = Field(None, description="the latent map picture beside the manifest (bank codes "
+                                                     "and this route); written by the command line, absent "
+                                                     "from the ZIP answer")
 
 
 # -- fill ---------------------------------------------------------------------------------------
@@ -119,24 +174,43 @@ class FillRequest(_Request):
         {"targets": [_EXAMPLE_PARAMS_A, _EXAMPLE_PARAMS_B], "min_confidence": 0.5}]})
 
 
-class FillFrameOut(_Out):
-    index: int = Field(description="1-based position in the request's targets")
+class _FillFrame(_Out):
+    """What a fill frame says, however its picture travels."""
+    index: int = Field(ge=1, description="1-based position in the request's targets")
     target: dict[str, float] = Field(description="the settings asked for")
-    image: str = Field(description="base64 PNG at the model's resolution")
-    confidence: float | None
+    confidence: float | None = Field(ge=0.0, le=1.0, description=CONFIDENCE)
     accepted: bool
     params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
     detail: float | None = Field(ge=0.0, le=1.0, description=DETAIL)
 
 
-class FillOut(_Out):
+class FillFrameOut(_Picture, _FillFrame):
+    image: str = Field(description="base64 PNG at the model's resolution")
+
+
+class FillFrameFileOut(_FillFrame):
+    """One frame of a fill manifest (a ZIP answer's manifest.json, or report.json of `geotween fill --out`)."""
+    file: str | None = Field(pattern=FILE_PATTERN, description=FILE)
+
+
+class _FillHead(_Out):
     model: str
-    version: int
-    frames: list[FillFrameOut]
-    accepted: int
-    rejected: int
+    version: int = Field(ge=1)
+    frames: list  # each answer names its frame model
+    accepted: int = Field(ge=0)
+    rejected: int = Field(ge=0)
     synthesized: Literal[True] = True
     notice: str = NOTICE
+
+
+class FillOut(_FillHead):
+    frames: list[FillFrameOut]
+
+
+class FillManifestOut(_FillHead):
+    """A fill answer as files: manifest.json of the ZIP answer (Accept: application/zip) and report.json of
+    `geotween fill --out`. The JSON answer with each frame's `image` replaced by `file`."""
+    frames: list[FillFrameFileOut]
 
 
 # -- latent map ---------------------------------------------------------------------------------

@@ -1,20 +1,18 @@
-"""What the route modules share: answers (frames as PNG) rendered as JSON or ZIP, content
-negotiation, and the documented error responses."""
+"""What the route modules share: frame answers (service.answers) sent as JSON or as a ZIP of
+PNGs with its manifest.json, content negotiation, the manifests' place in the OpenAPI document,
+and the documented error responses."""
 from __future__ import annotations
 
 import io
-import json
 import zipfile
-from dataclasses import dataclass, field
-from typing import Sequence
 
-from fastapi import Request
-from fastapi.responses import JSONResponse, Response
+from fastapi import FastAPI, Request
+from fastapi.responses import Response
+from pydantic import BaseModel
+from pydantic.json_schema import models_json_schema
 
-from ...models.engine import FrameCounts
-
-from ..imaging import encode_png, png_base64
-from ..schemas import NOTICE, ErrorOut
+from ..answers import Answer, frame_file, manifest_json, to_wire
+from ..schemas import BetweenManifestOut, ErrorOut, FillManifestOut
 
 ZIP = "application/zip"
 JSON = "application/json"
@@ -36,94 +34,48 @@ def errors(*statuses: int) -> dict:
     return {s: {"model": ErrorOut, "description": _ERROR_TEXT[s]} for s in statuses}
 
 
-def media(description: str, example: dict | None = None, *, zip_too: bool = False) -> dict:
-    """OpenAPI 200 entry: JSON (with an example) and, for frame answers, a ZIP of PNGs."""
+# Models that describe files rather than JSON bodies (the manifest.json inside a ZIP answer): no
+# route returns them as JSON, so add_file_schemas puts them into the OpenAPI components.
+FILE_MODELS: tuple[type[BaseModel], ...] = (BetweenManifestOut, FillManifestOut)
+_COMPONENTS = "#/components/schemas/{model}"
+
+
+def media(description: str, example: dict | None = None, *, manifest: type[BaseModel] | None = None) -> dict:
+    """OpenAPI 200 entry: JSON (with an example) and, for frame answers, a ZIP of PNGs whose
+    manifest.json follows `manifest` (named by the extension x-manifest, a JSON pointer into the
+    components)."""
     content = {JSON: {"example": example} if example else {}}
-    if zip_too:
-        content[ZIP] = {"schema": {"type": "string", "format": "binary"}}
+    if manifest is not None:
+        if manifest not in FILE_MODELS:
+            raise ValueError(f"manifest: {manifest.__name__} is not one of FILE_MODELS")
+        content[ZIP] = {"schema": {"type": "string", "format": "binary"},
+                        "x-manifest": _COMPONENTS.format(model=manifest.__name__)}
     return {"description": description, "content": content}
 
 
-@dataclass
-class FrameData:
-    """One answered frame, its image already PNG-encoded."""
-    index: int
-    t: float
-    png: bytes
-    confidence: float | None
-    accepted: bool
-    params: dict[str, float]
-    target: dict[str, float] | None = None
-    code: list[float] | None = None   # between frames: the latent code the frame was decoded from
-    detail: float | None = None       # share of pixels from real bank images (None: the model does not refine)
+def add_file_schemas(app: FastAPI) -> None:
+    """Make the app's OpenAPI document carry FILE_MODELS under components/schemas as well."""
+    build = app.openapi
 
+    def openapi() -> dict:
+        if app.openapi_schema is None:
+            doc = build()  # cached on app.openapi_schema: the additions below stay
+            _, defs = models_json_schema([(m, "serialization") for m in FILE_MODELS], ref_template=_COMPONENTS)
+            doc.setdefault("components", {}).setdefault("schemas", {}).update(defs["$defs"])
+        return app.openapi_schema
 
-@dataclass
-class Answer(FrameCounts):
-    """A between or fill answer, independent of how it is sent."""
-    kind: str                      # "between" | "fill"
-    model: str
-    version: int
-    frames: list[FrameData]
-    route: str | None = None
-    start_params: dict[str, float] = field(default_factory=dict)
-    end_params: dict[str, float] = field(default_factory=dict)
-    start_code: list[float] | None = None
-    end_code: list[float] | None = None
-
-
-def frame_data(frames: Sequence, targets: Sequence[dict] | None = None, *, offset: int = 0,
-               codes: Sequence | None = None) -> list[FrameData]:
-    """Engine frames to FrameData (PNG encoding is CPU work: call it on the pool)."""
-    out = []
-    for k, f in enumerate(frames):
-        out.append(FrameData(index=offset + k + 1, t=float(f.t), png=encode_png(f.image),
-                             confidence=None if f.confidence is None else float(f.confidence),
-                             accepted=bool(f.accepted), params={n: float(v) for n, v in f.params.items()},
-                             target=None if targets is None else dict(targets[k]),
-                             code=None if codes is None else [float(c) for c in codes[k]],
-                             detail=None if f.detail is None else float(f.detail)))
-    return out
-
-
-def _frame_json(f: FrameData, kind: str, image: dict) -> dict:
-    base = {"index": f.index}
-    if kind == "between":
-        base["t"] = f.t
-    else:
-        base["target"] = f.target
-    body = {**base, **image, "confidence": f.confidence, "accepted": f.accepted, "params": f.params,
-            "detail": f.detail}
-    if f.code is not None:
-        body["code"] = f.code
-    return body
-
-
-def to_json(answer: Answer, *, files: Sequence[str] | None = None) -> dict:
-    """The JSON body (BetweenOut or FillOut); with `files`, images are named files instead."""
-    frames = [_frame_json(f, answer.kind, {"file": files[i]} if files else {"image": png_base64(f.png)})
-              for i, f in enumerate(answer.frames)]
-    body = {"model": answer.model, "version": answer.version}
-    if answer.kind == "between":
-        body["route"] = answer.route
-    body.update(frames=frames, accepted=answer.accepted, rejected=answer.rejected)
-    if answer.kind == "between":
-        body.update(start_params=answer.start_params, end_params=answer.end_params)
-        if answer.start_code is not None:
-            body.update(start_code=answer.start_code, end_code=answer.end_code)
-    body.update(synthesized=True, notice=NOTICE)
-    return body
+    app.openapi = openapi
 
 
 def to_zip(answer: Answer) -> bytes:
-    """A ZIP of PNG frames (every frame; manifest.json says which are accepted)."""
-    prefix = "frame" if answer.kind == "between" else "target"
-    files = [f"{prefix}_{f.index:04d}.png" for f in answer.frames]
+    """A ZIP of PNG frames (every frame; manifest.json, a BetweenManifestOut or FillManifestOut,
+    says which are accepted)."""
+    files = [frame_file(answer.kind, f.fields["index"]) for f in answer.frames]
     buf = io.BytesIO()
     with zipfile.ZipFile(buf, "w", compression=zipfile.ZIP_STORED) as zf:  # PNGs are compressed already
         for name, f in zip(files, answer.frames):
             zf.writestr(name, f.png)
-        zf.writestr("manifest.json", json.dumps(to_json(answer, files=files), indent=1))
+        zf.writestr("manifest.json", manifest_json(to_wire(answer, files)))
     return buf.getvalue()
 
 
@@ -156,16 +108,10 @@ def wants_zip(request: Request) -> bool:
 
 
 def respond(request: Request, answer: Answer, *, status_code: int = 200) -> Response:
+    """The answer as JSON (BetweenOut or FillOut, serialised by the model that validated it: the
+    route's response_model is not applied a second time) or as a ZIP."""
     if wants_zip(request):
         filename = f"{answer.model}-v{answer.version}-{answer.kind}.zip"
         return Response(to_zip(answer), status_code=status_code, media_type=ZIP,
                         headers={"Content-Disposition": f'attachment; filename="{filename}"'})
-    return JSONResponse(to_json(answer), status_code=status_code)
-
-
-def end_codes(answer) -> dict:
-    """start_code / end_code of an engine answer, as JSON lists (empty when it has none)."""
-    ends = getattr(answer, "ends", None)
-    if ends is None:
-        return {}
-    return {"start_code": [float(c) for c in ends[0]], "end_code": [float(c) for c in ends[1]]}
+    return Response(to_wire(answer).model_dump_json(), status_code=status_code, media_type=JSON)

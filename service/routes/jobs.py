@@ -7,9 +7,10 @@ from fastapi import APIRouter, Request
 from fastapi import Path as PathParam
 from fastapi.responses import JSONResponse
 
+from ..answers import Answer
 from ..deps import OfferedKey, ServicesDep, authorize
-from ..schemas import FillOut, JobOut, TrainingOut
-from .common import Answer, errors, media, respond
+from ..schemas import FillManifestOut, FillOut, JobOut, TrainingOut
+from .common import errors, media, respond
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
@@ -24,7 +25,7 @@ def get_job(job_id: JobId, services: ServicesDep) -> dict:
 
 @router.get("/{job_id}/result", operation_id="get_job_result", response_model=FillOut | TrainingOut,
             responses={200: media("a fill job's frames (JSON, or a ZIP on Accept: application/zip), or a "
-                                  "training job's registered version", zip_too=True),
+                                  "training job's registered version", manifest=FillManifestOut),
                        **errors(404, 409, 422)},
             summary="The result of a done job")
 def get_job_result(job_id: JobId, services: ServicesDep, request: Request):

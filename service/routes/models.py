@@ -11,14 +11,15 @@ from starlette.concurrency import run_in_threadpool
 from ...models.engine import Endpoint
 from ...models.params import ParamSpace
 
+from ..answers import Answer, EncodedFrame, between_answer, fill_answer, fill_frames
 from ..cache import ModelCache
 from ..deps import ApiKeyDep, ModelName, Services, ServicesDep, note
 from ..errors import BadInput
 from ..imaging import decode_base64, open_image, to_model_array
 from ..registry import ModelVersion
-from ..schemas import (REFINE_REQUEST, BetweenOut, BetweenRequest, DeletedOut, EndRequest, FillOut, FillRequest,
-                       JobOut, ModelListOut, ModelOut)
-from .common import Answer, end_codes, errors, frame_data, media, respond
+from ..schemas import (REFINE_REQUEST, BetweenManifestOut, BetweenOut, BetweenRequest, DeletedOut, FillManifestOut,
+                       FillOut, FillRequest, JobOut, ModelListOut, ModelOut)
+from .common import errors, media, respond
 
 router = APIRouter(prefix="/v1", tags=["models"])
 
@@ -65,16 +66,14 @@ def _between(services: Services, name: str, version: int | None, start, end, fra
     engine = cache.engine(entry)
     ans = engine.between(_endpoint(start, engine), _endpoint(end, engine), frames=frames, route=route,
                          min_confidence=min_confidence, refine=refine)
-    return Answer(kind="between", model=entry.name, version=entry.version,
-                  frames=frame_data(ans.frames, codes=ans.codes), route=ans.route, start_params=ans.start_params,
-                  end_params=ans.end_params, **end_codes(ans))
+    return between_answer(ans, entry.name, entry.version)
 
 
 def fill_chunk(cache: ModelCache, entry: ModelVersion, targets: Sequence[Mapping[str, float]],
-               min_confidence: float, offset: int = 0, refine: bool = True):
-    """Frames for targets[offset:offset+len]; runs on the inference pool."""
+               min_confidence: float, offset: int = 0, refine: bool = True) -> list[EncodedFrame]:
+    """Frames for targets[offset:offset+len], PNG-encoded; runs on the inference pool."""
     engine = cache.engine(entry)
-    return frame_data(engine.fill(targets, min_confidence=min_confidence, refine=refine), targets, offset=offset)
+    return fill_frames(engine.fill(targets, min_confidence=min_confidence, refine=refine), targets, offset=offset)
 
 
 def _frame_limit(services: Services, frames: int) -> None:
@@ -132,7 +131,7 @@ def delete_model_version(key: ApiKeyDep, name: ModelName, version: Annotated[int
 
 @router.post("/models/{name}/between", operation_id="between", response_model=BetweenOut,
              responses={200: media("in-between frames (JSON, or a ZIP of PNGs with manifest.json on "
-                                   "Accept: application/zip)", zip_too=True),
+                                   "Accept: application/zip)", manifest=BetweenManifestOut),
                         **errors(400, 404, 413, 422, 503)},
              summary="Frames between two ends (images or settings)")
 async def between(name: ModelName, body: BetweenRequest, request: Request, services: ServicesDep):
@@ -146,7 +145,7 @@ _UPLOAD_EXAMPLE = {"start": "(PNG or JPEG file)", "end": "(PNG or JPEG file)", "
 
 
 @router.post("/models/{name}/between/upload", operation_id="between_upload", response_model=BetweenOut,
-             responses={200: media("as for between", zip_too=True), **errors(400, 404, 413, 422, 503)},
+             responses={200: media("as for between", manifest=BetweenManifestOut), **errors(400, 404, 413, 422, 503)},
              summary="Frames between two uploaded image files (multipart form)",
              openapi_extra={"requestBody": {"content": {"multipart/form-data": {"example": _UPLOAD_EXAMPLE}}}})
 async def between_upload(
@@ -171,7 +170,7 @@ async def between_upload(
 
 @router.post("/models/{name}/fill", operation_id="fill", response_model=FillOut,
              responses={200: media("one frame per target (JSON, or a ZIP on Accept: application/zip)",
-                                   zip_too=True),
+                                   manifest=FillManifestOut),
                         202: {"model": JobOut, "description": "too many targets to answer at once (or as_job): "
                                                               "a job was queued; poll Location"},
                         **errors(400, 404, 413, 422, 503)},
@@ -194,7 +193,7 @@ async def fill(name: ModelName, body: FillRequest, request: Request, services: S
     targets, min_conf, refine = body.targets, body.min_confidence, body.refine
     if n <= s.max_fill_sync and not body.as_job:
         frames = await services.pool.run(fill_chunk, services.cache, entry, targets, min_conf, 0, refine)
-        answer = Answer(kind="fill", model=entry.name, version=entry.version, frames=frames)
+        answer = fill_answer(frames, entry.name, entry.version)
         services.metrics.frames(entry.name, len(frames), answer.rejected)
         note(request, model=entry.name, version=entry.version, frames=len(frames), rejected=answer.rejected)
         return respond(request, answer)
@@ -207,7 +206,7 @@ async def fill(name: ModelName, body: FillRequest, request: Request, services: S
         for lo in range(0, n, chunk):
             frames += ctx.compute(fill_chunk, cache, entry, targets[lo:lo + chunk], min_conf, lo, refine)
             ctx.progress(len(frames))
-        answer = Answer(kind="fill", model=entry.name, version=entry.version, frames=frames)
+        answer = fill_answer(frames, entry.name, entry.version)
         metrics.frames(entry.name, len(frames), answer.rejected)
         return answer
 
