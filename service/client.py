@@ -1,33 +1,45 @@
 """Typed HTTP client of the geotween service (httpx).
 
     with Client("http://127.0.0.1:8000") as c:
-        result = c.between("relief-tile", {"lamp_azimuth": 30, "lamp_elevation": 40}, "end.png", frames=8)
-        for f in result.frames:
-            f.pil().save(f"frame_{f.index}.png") if f.accepted else None
+        answer = c.between("relief-tile", {"lamp_azimuth": 30, "lamp_elevation": 40}, "end.png", frames=8)
+        for f in answer.frames:
+            if f.accepted:
+                f.pil().save(f"frame_{f.index:04d}.png")   # f.array(): (H, W, C) float32 in [0, 1]
 
-Every failure raises ClientError(status, code, message, field); status is None when the server
-could not be reached. Pass `transport=httpx.MockTransport(handler)` to test without a server.
-Frames are synthesized by a learned model, not captured.
+Answers are parsed into the service's own wire models (service/schemas.py, re-exported here):
+BetweenOut, FillOut, ModelOut, JobOut, LatentMapOut, ... are what /openapi.json documents. Keys a
+newer server adds are ignored; an answer that breaks the contract raises ClientError with code
+'invalid_answer'. Every failure raises ClientError(status, code, message, field); status is None
+when the server could not be reached. Pass `transport=httpx.MockTransport(handler)` to test
+without a server. Frames are synthesized by a learned model, not captured.
 """
 from __future__ import annotations
 
 import base64
 import io
 import time
-from dataclasses import dataclass, field, fields
 from pathlib import Path
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any, Callable, Mapping, Sequence, TypeVar
 
 from urllib.parse import quote
 
 import httpx
 import numpy as np
 from PIL import Image
+from pydantic import BaseModel, TypeAdapter, ValidationError
+
+from .schemas import (BetweenOut, DeletedOut, FillFrameOut, FillOut, FrameOut, HealthOut, JobOut, LatentMapOut,
+                      MapPointsOut, ModelListOut, ModelOut, ModelSummaryOut, ReadyOut, TrainingOut)
 
 DEFAULT_TIMEOUT = httpx.Timeout(30.0, connect=5.0)  # seconds
+FINISHED = ("done", "failed", "cancelled")  # job states that no longer change
 
-__all__ = ["BetweenResult", "Client", "ClientError", "FillResult", "Frame", "JobStatus", "ModelDetail",
-           "ModelSummary", "DEFAULT_TIMEOUT"]
+__all__ = ["BetweenOut", "Client", "ClientError", "DeletedOut", "FillFrameOut", "FillOut", "FrameOut", "JobOut",
+           "LatentMapOut", "MapPointsOut", "ModelOut", "ModelSummaryOut", "TrainingOut", "DEFAULT_TIMEOUT",
+           "FINISHED"]
+
+Model = TypeVar("Model", bound=BaseModel)
+_JOB_RESULT = TypeAdapter(FillOut | TrainingOut)
 
 
 class ClientError(Exception):
@@ -38,128 +50,9 @@ class ClientError(Exception):
         self.status, self.code, self.message, self.field = status, code, message, field
 
 
-@dataclass
-class Frame:
-    """One synthesized frame; `image` is (H, W, C) float32 in [0, 1]."""
-    index: int
-    image: np.ndarray
-    confidence: float | None
-    accepted: bool
-    params: dict[str, float]
-    t: float | None = None                    # between frames: fraction of the route's length
-    target: dict[str, float] | None = None    # fill frames: the settings asked for
-    # share of pixels, [0, 1], carried over from real training images by detail transfer (moved by an
-    # estimated optical flow; the frame is still synthesized); None when the model does not refine
-    detail: float | None = None
-
-    def pil(self) -> Image.Image:
-        arr = np.round(np.clip(self.image, 0.0, 1.0) * 255.0).astype(np.uint8)
-        return Image.fromarray(arr[..., 0] if arr.shape[-1] == 1 else arr)
-
-
-@dataclass
-class BetweenResult:
-    model: str
-    version: int
-    route: str
-    frames: list[Frame]
-    accepted: int
-    rejected: int
-    start_params: dict[str, float]
-    end_params: dict[str, float]
-    notice: str
-
-
-@dataclass
-class FillResult:
-    model: str
-    version: int
-    frames: list[Frame]
-    accepted: int
-    rejected: int
-    notice: str
-    job_id: str | None = None                 # set when the server ran the fill as a job
-
-
-@dataclass
-class JobStatus:
-    id: str
-    kind: str
-    state: str
-    done: int
-    total: int
-    model: str | None
-    version: int | None
-    error: dict | None
-    raw: dict = field(repr=False, default_factory=dict)
-
-    @property
-    def finished(self) -> bool:
-        return self.state in ("done", "failed", "cancelled")
-
-    @classmethod
-    def from_json(cls, d: Mapping) -> "JobStatus":
-        p = d.get("progress") or {}
-        return cls(id=d["id"], kind=d["kind"], state=d["state"], done=int(p.get("done", 0)),
-                   total=int(p.get("total", 0)), model=d.get("model"), version=d.get("version"),
-                   error=d.get("error"), raw=dict(d))
-
-
-@dataclass
-class ModelSummary:
-    name: str
-    latest_version: int
-    versions: int
-    latest_created: str
-
-
-@dataclass
-class ModelDetail:
-    name: str
-    latest_version: int
-    version: int
-    versions: list[dict]
-    parameters: list[dict]
-    resolution: int
-    channels: int
-    metrics: dict
-    calibration: dict
-    # detail transfer: {"on", "chosen", "config", "holdout": {"decoded": {psnr, ssim}, "refined": {psnr,
-    # ssim, detail}} | None, "skippable"}; empty from a server that does not report it
-    refine: dict = field(default_factory=dict)
-
-    @property
-    def parameter_names(self) -> list[str]:
-        return [p["name"] for p in self.parameters]
-
-    @property
-    def refines(self) -> bool:
-        """True when this model's frames are refined with detail from real training images."""
-        return bool(self.refine.get("on", False))
-
-
-def _known(cls, d: Mapping) -> dict:
-    """The keys of `d` that `cls` declares (a newer server may send more)."""
-    names = {f.name for f in fields(cls)}
-    return {k: v for k, v in d.items() if k in names}
-
-
 def _seg(value: object) -> str:
     """One path segment, with '/' and '.' escaped so '..' reaches the server as a name, not a hop."""
     return quote(str(value), safe="").replace(".", "%2E")
-
-
-def _decode_png(text: str) -> np.ndarray:
-    with Image.open(io.BytesIO(base64.b64decode(text))) as img:
-        arr = np.asarray(img.convert("L" if img.mode in ("L", "I", "I;16") else "RGB"), dtype=np.float32) / 255.0
-    return arr[..., None] if arr.ndim == 2 else arr
-
-
-def _frames(items: Sequence[Mapping]) -> list[Frame]:
-    return [Frame(index=int(f["index"]), image=_decode_png(f["image"]), confidence=f.get("confidence"),
-                  accepted=bool(f["accepted"]), params=dict(f.get("params") or {}), t=f.get("t"),
-                  target=f.get("target"), detail=None if f.get("detail") is None else float(f["detail"]))
-            for f in items]
 
 
 def _png_of_array(arr: np.ndarray) -> bytes:
@@ -231,116 +124,185 @@ class Client:
                 raise ClientError(response.status_code, "http_error", response.text[:300]) from None
         return response
 
-    def _json(self, method: str, path: str, **kw) -> Any:
-        return self._request(method, path, **kw).json()
+    def _parse(self, model: type[Model], response: httpx.Response) -> Model:
+        """The answer as `model`, keys a newer server adds ignored; ClientError when it breaks the contract."""
+        return self._validate(lambda: model.model_validate_json(response.content, extra="ignore"), model.__name__,
+                              response)
+
+    @staticmethod
+    def _validate(parse: Callable[[], Any], name: str, response: httpx.Response) -> Any:
+        try:
+            return parse()
+        except ValidationError as exc:
+            first = exc.errors()[0]
+            where = ".".join(str(x) for x in first["loc"]) or "(the body)"
+            raise ClientError(response.status_code, "invalid_answer",
+                              f"{response.request.method} {response.request.url.path}: the answer is not a {name} "
+                              f"({where}: {first['msg']})") from None
+
+    def _get(self, model: type[Model], method: str, path: str, **kw) -> Model:
+        return self._parse(model, self._request(method, path, **kw))
 
     # -- service ------------------------------------------------------------------------------
     def health(self) -> bool:
-        return self._json("GET", "/healthz").get("status") == "ok"
+        return self._get(HealthOut, "GET", "/healthz").status == "ok"
 
     def ready(self) -> bool:
         try:
-            return self._json("GET", "/readyz").get("status") == "ready"
+            return self._get(ReadyOut, "GET", "/readyz").status == "ready"
         except ClientError as exc:
             if exc.status == 503:
                 return False
             raise
 
-    def models(self) -> list[ModelSummary]:
-        return [ModelSummary(**_known(ModelSummary, m)) for m in self._json("GET", "/v1/models")["models"]]
+    def metrics(self) -> str:
+        """The service's Prometheus metrics, in the Prometheus text format."""
+        return self._request("GET", "/metrics").text
 
-    def model(self, name: str, version: int | None = None) -> ModelDetail:
+    def models(self) -> list[ModelSummaryOut]:
+        return self._get(ModelListOut, "GET", "/v1/models").models
+
+    def model(self, name: str, version: int | None = None) -> ModelOut:
+        """Versions, parameter spec, metrics, calibration and detail transfer (`refine.on`) of a model."""
         params = {"version": version} if version is not None else None
-        d = _known(ModelDetail, self._json("GET", f"/v1/models/{_seg(name)}", params=params))
-        d["refine"] = dict(d.get("refine") or {})
-        return ModelDetail(**d)
+        return self._get(ModelOut, "GET", f"/v1/models/{_seg(name)}", params=params)
 
-    def delete(self, name: str, version: int) -> None:
-        self._json("DELETE", f"/v1/models/{_seg(name)}/{_seg(version)}")
+    def delete(self, name: str, version: int) -> DeletedOut:
+        """Delete one version (needs `api_key`)."""
+        return self._get(DeletedOut, "DELETE", f"/v1/models/{_seg(name)}/{_seg(version)}")
 
     # -- frames -------------------------------------------------------------------------------
     def between(self, name: str, start: Any, end: Any, frames: int = 8, route: str = "geodesic",
-                min_confidence: float = 0.5, version: int | None = None, refine: bool = True) -> BetweenResult:
+                min_confidence: float = 0.5, version: int | None = None, refine: bool = True) -> BetweenOut:
         """Frames between two ends; each end is an image path, PIL image, array, or a settings dict.
         refine=False skips detail transfer on a model that refines (faster, softer frames)."""
         body = {"start": end_json(start), "end": end_json(end), "frames": frames, "route": route,
                 "min_confidence": min_confidence, "refine": bool(refine)}
         if version is not None:
             body["version"] = version
-        d = self._json("POST", f"/v1/models/{_seg(name)}/between", json=body)
-        return BetweenResult(model=d["model"], version=d["version"], route=d["route"], frames=_frames(d["frames"]),
-                             accepted=d["accepted"], rejected=d["rejected"], start_params=d["start_params"],
-                             end_params=d["end_params"], notice=d["notice"])
+        return self._get(BetweenOut, "POST", f"/v1/models/{_seg(name)}/between", json=body)
 
-    def fill(self, name: str, targets: Sequence[Mapping[str, float]], *, min_confidence: float = 0.5,
-             version: int | None = None, as_job: bool = False,
-             progress: Callable[[int, int], None] | None = None, wait_timeout: float = 600.0,
-             refine: bool = True) -> FillResult:
-        """One frame per target; when the server answers 202 the job is polled until it is done."""
+    def between_upload(self, name: str, start: Any, end: Any, frames: int = 8, route: str = "geodesic",
+                       min_confidence: float = 0.5, version: int | None = None, refine: bool = True) -> BetweenOut:
+        """As between, with both ends sent as image files in a multipart form (no base64); each end
+        is an image path, PIL image or array."""
+        files = {}
+        for side, given in (("start", start), ("end", end)):
+            if isinstance(given, Mapping):
+                raise TypeError(f"{side}: settings cannot be uploaded as a file; use between() for settings ends")
+            data = image_bytes(given)
+            files[side] = (f"{side}.{_kind(data)}", data, f"image/{_kind(data)}")
+        form = {"frames": str(frames), "route": route, "min_confidence": repr(float(min_confidence)),
+                "refine": "true" if refine else "false"}
+        if version is not None:
+            form["version"] = str(version)
+        return self._get(BetweenOut, "POST", f"/v1/models/{_seg(name)}/between/upload", files=files, data=form)
+
+    @staticmethod
+    def _fill_body(targets: Sequence[Mapping[str, float]], min_confidence: float, version: int | None,
+                   as_job: bool, refine: bool) -> dict:
         body = {"targets": [{str(k): float(v) for k, v in t.items()} for t in targets],
                 "min_confidence": min_confidence, "as_job": as_job, "refine": bool(refine)}
         if version is not None:
             body["version"] = version
-        response = self._request("POST", f"/v1/models/{_seg(name)}/fill", json=body)
-        job_id = None
+        return body
+
+    def fill(self, name: str, targets: Sequence[Mapping[str, float]], *, min_confidence: float = 0.5,
+             version: int | None = None, as_job: bool = False,
+             progress: Callable[[int, int], None] | None = None, wait_timeout: float = 600.0,
+             refine: bool = True) -> FillOut:
+        """One frame per target; when the server runs the fill as a job (202), the job is polled
+        until it is done and its result returned (start_fill gives the job itself)."""
+        response = self._request("POST", f"/v1/models/{_seg(name)}/fill",
+                                 json=self._fill_body(targets, min_confidence, version, as_job, refine))
         if response.status_code == 202:
-            status = self.wait(response.json()["id"], progress=progress, timeout=wait_timeout)
-            self._raise_unless_done(status)
-            job_id = status.id
-            d = self._json("GET", f"/v1/jobs/{_seg(job_id)}/result")
-        else:
-            d = response.json()
-            if progress is not None:
-                progress(len(d["frames"]), len(d["frames"]))
-        return FillResult(model=d["model"], version=d["version"], frames=_frames(d["frames"]),
-                          accepted=d["accepted"], rejected=d["rejected"], notice=d["notice"], job_id=job_id)
+            job = self.wait(self._parse(JobOut, response).id, progress=progress, timeout=wait_timeout)
+            return self._job_answer(job, FillOut)
+        answer = self._parse(FillOut, response)
+        if progress is not None:
+            progress(len(answer.frames), len(answer.frames))
+        return answer
+
+    def start_fill(self, name: str, targets: Sequence[Mapping[str, float]], *, min_confidence: float = 0.5,
+                   version: int | None = None, refine: bool = True) -> JobOut:
+        """Queue a fill as a job whatever its size; follow it with job / wait, collect it with result."""
+        response = self._request("POST", f"/v1/models/{_seg(name)}/fill",
+                                 json=self._fill_body(targets, min_confidence, version, True, refine))
+        if response.status_code != 202:
+            raise ClientError(response.status_code, "invalid_answer",
+                              f"POST /v1/models/{name}/fill with as_job: expected 202 and a job, got "
+                              f"{response.status_code}")
+        return self._parse(JobOut, response)
+
+    # -- latent map ---------------------------------------------------------------------------
+    def latent_map(self, name: str, version: int | None = None) -> LatentMapOut:
+        """Every bank code of the model on its 2-D latent map (PCA fitted on the bank)."""
+        params = {"version": version} if version is not None else None
+        return self._get(LatentMapOut, "GET", f"/v1/models/{_seg(name)}/map", params=params)
+
+    def place_on_map(self, name: str, codes: Sequence[Sequence[float]] | np.ndarray,
+                     version: int | None = None) -> MapPointsOut:
+        """Latent codes (a between answer's `start_code`, frames' `code`, `end_code`) on the same map."""
+        body: dict[str, Any] = {"codes": [[float(c) for c in code] for code in codes]}
+        if version is not None:
+            body["version"] = version
+        return self._get(MapPointsOut, "POST", f"/v1/models/{_seg(name)}/map", json=body)
 
     # -- jobs ---------------------------------------------------------------------------------
-    def job(self, job_id: str) -> JobStatus:
-        return JobStatus.from_json(self._json("GET", f"/v1/jobs/{_seg(job_id)}"))
+    def job(self, job_id: str) -> JobOut:
+        return self._get(JobOut, "GET", f"/v1/jobs/{_seg(job_id)}")
 
-    def cancel(self, job_id: str) -> JobStatus:
-        return JobStatus.from_json(self._json("DELETE", f"/v1/jobs/{_seg(job_id)}"))
+    def cancel(self, job_id: str) -> JobOut:
+        return self._get(JobOut, "DELETE", f"/v1/jobs/{_seg(job_id)}")
 
-    def result(self, job_id: str) -> dict:
-        return self._json("GET", f"/v1/jobs/{_seg(job_id)}/result")
+    def result(self, job_id: str) -> FillOut | TrainingOut:
+        """A done job's result: a fill's frames or a training's registered version."""
+        response = self._request("GET", f"/v1/jobs/{_seg(job_id)}/result")
+        return self._validate(lambda: _JOB_RESULT.validate_json(response.content, extra="ignore"),
+                              "FillOut or TrainingOut", response)
 
     def wait(self, job_id: str, *, progress: Callable[[int, int], None] | None = None,
-             timeout: float = 600.0) -> JobStatus:
+             timeout: float = 600.0) -> JobOut:
         """Poll a job until it is done, failed or cancelled (at most `timeout` seconds)."""
         deadline = time.monotonic() + timeout
         while True:
             status = self.job(job_id)
             if progress is not None:
-                progress(status.done, status.total)
-            if status.finished:
+                progress(status.progress.done, status.progress.total)
+            if status.state in FINISHED:
                 return status
             if time.monotonic() > deadline:
                 raise ClientError(None, "timeout", f"job {job_id} still {status.state} after {timeout:g} s "
-                                                   f"({status.done}/{status.total})")
+                                                   f"({status.progress.done}/{status.progress.total})")
             time.sleep(self.poll_interval)
 
-    @staticmethod
-    def _raise_unless_done(status: JobStatus) -> None:
-        if status.state == "done":
-            return
-        err = status.error or {}
-        raise ClientError(None, str(err.get("code") or f"job_{status.state}"),
-                          str(err.get("message") or f"job {status.id} was {status.state}"), err.get("field"))
+    def _job_answer(self, job: JobOut, model: type[Model]) -> Model:
+        """The result of a finished job as `model`; ClientError when it failed or was cancelled."""
+        if job.state != "done":
+            err = job.error
+            raise ClientError(None, err.code if err else f"job_{job.state}",
+                              err.message if err else f"job {job.id} was {job.state}", err.field if err else None)
+        answer = self.result(job.id)
+        if not isinstance(answer, model):
+            raise ClientError(200, "invalid_answer", f"job {job.id}: the result is not a {model.__name__}")
+        return answer
 
     def train(self, scene: str, name: str, *, steps: int | None = None, budget_seconds: float | None = None,
               seed: int = 0, resolution: int = 64, wait: bool = False,
-              progress: Callable[[int, int], None] | None = None, timeout: float = 3600.0) -> JobStatus | dict:
-        """Start a training job on a scene folder on the server (API key); with `wait`, the
-        registered version {"model", "version", "created", "hash", "metrics"} once it is done."""
+              progress: Callable[[int, int], None] | None = None, timeout: float = 3600.0) -> JobOut | TrainingOut:
+        """Start a training job on a scene folder on the server (API key): the job, or with `wait`
+        the registered version once it is done."""
         body: dict[str, Any] = {"scene": str(scene), "name": name, "seed": seed, "resolution": resolution}
         if steps is not None:
             body["steps"] = steps
         if budget_seconds is not None:
             body["budget_seconds"] = budget_seconds
-        status = JobStatus.from_json(self._json("POST", "/v1/trainings", json=body))
+        job = self._get(JobOut, "POST", "/v1/trainings", json=body)
         if not wait:
-            return status
-        status = self.wait(status.id, progress=progress, timeout=timeout)
-        self._raise_unless_done(status)
-        return self.result(status.id)
+            return job
+        return self._job_answer(self.wait(job.id, progress=progress, timeout=timeout), TrainingOut)
+
+
+def _kind(data: bytes) -> str:
+    """'png' or 'jpeg' from an image file's first bytes (PNG and JPEG signatures, common practice)."""
+    return "jpeg" if data[:3] == b"\xff\xd8\xff" else "png"

@@ -133,14 +133,17 @@ def test_client_against_the_live_server(server):
         assert c.health() and c.ready()
         assert [m.name for m in c.models()] == ["tile"]
         detail = c.model("tile")
-        assert detail.parameter_names == ["lamp_azimuth", "lamp_elevation"] and detail.resolution == 16
+        assert [p.name for p in detail.parameters] == ["lamp_azimuth", "lamp_elevation"] and detail.resolution == 16
         start = Image.fromarray((render_many(np.array([[30.0, 40.0]]), 16)[0, ..., 0] * 255).astype(np.uint8))
         result = c.between("tile", start, P(120, 60), frames=3, route="straight")
-        assert len(result.frames) == 3 and result.frames[0].image.shape == (16, 16, 1)
+        assert len(result.frames) == 3 and result.frames[0].array().shape == (16, 16, 1)
         assert result.frames[1].t == pytest.approx(0.5)
         progress = []
         filled = c.fill("tile", [P(a, 50) for a in range(0, 360, 40)], progress=lambda d, t: progress.append((d, t)))
-        assert filled.job_id is not None and len(filled.frames) == 9 and progress[-1] == (9, 9)
+        assert len(filled.frames) == 9 and progress[-1] == (9, 9)
+        job = c.start_fill("tile", [P(a, 50) for a in range(0, 360, 40)])
+        assert job.kind == "fill" and c.wait(job.id).state == "done"
+        assert [f.png() for f in c.result(job.id).frames] == [f.png() for f in filled.frames]  # the same frames
         with pytest.raises(ClientError) as info:
             c.between("nope", P(1, 30), P(2, 30))
         assert (info.value.status, info.value.code) == (404, "model_not_found")
