@@ -123,14 +123,6 @@ def _local_engine(args):
     return Engine.load(entry.path), entry
 
 
-def save_png(image, path: Path) -> None:
-    import numpy as np
-    from PIL import Image
-
-    arr = np.round(np.clip(image, 0.0, 1.0) * 255).astype(np.uint8)
-    Image.fromarray(arr[..., 0] if arr.shape[2] == 1 else arr).save(path)
-
-
 def cmd_between(args) -> int:
     if args.frames < 1:
         raise UsageError(f"--frames: {args.frames} is out of range; expected >= 1")
@@ -140,25 +132,22 @@ def cmd_between(args) -> int:
     start, end = parse_end(args.start, engine), parse_end(args.end, engine)
     answer = engine.between(start, end, frames=args.frames, route=args.route, min_confidence=args.min_confidence,
                             refine=not args.no_refine)
+    from ..models.latent_map import engine_map_png
+    from .answers import between_answer, frame_file, manifest_json, to_wire
+
+    wire = between_answer(answer, entry.name, entry.version)  # the PNGs and fields the service would send
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    frames = []
-    for f in answer.frames:
-        name = f"frame_{f.index:03d}.png" if f.accepted or args.keep_rejected else None
+    files = []
+    for f in wire.frames:
+        name = frame_file("between", f.fields["index"]) if f.accepted or args.keep_rejected else None
         if name:
-            save_png(f.image, out / name)
-        frames.append({"index": f.index, "t": round(f.t, 6), "confidence": f.confidence, "accepted": f.accepted,
-                       "params": f.params, "detail": f.detail, "image": name})
-    from ..models.latent_map import engine_map_png
-
+            (out / name).write_bytes(f.png)
+        files.append(name)
     engine_map_png(engine, [answer], out / LATENT_MAP,
                    title=f"{entry.name}@{entry.version}: bank codes and the {answer.route} route")
-    manifest = {"model": entry.name, "version": entry.version, "route": answer.route, "synthesized": True,
-                "notice": "frames are synthesized by a learned model, not captured",
-                "start_params": answer.start_params, "end_params": answer.end_params,
-                "accepted": answer.accepted, "rejected": answer.rejected, "frames": frames,
-                "latent_map": LATENT_MAP}
-    (out / "manifest.json").write_text(json.dumps(manifest, indent=1))
+    # the ZIP answer's manifest (BetweenManifestOut), naming the latent map too
+    (out / "manifest.json").write_text(manifest_json(to_wire(wire, files, latent_map=LATENT_MAP)))
     print(f"{entry.name}@{entry.version} {answer.route}: {answer.accepted} accepted, {answer.rejected} rejected "
           f"-> {out}")
     return EXIT_REJECTED if args.strict and answer.rejected else EXIT_OK

@@ -2,13 +2,13 @@
 
 `fill NAME TARGETS.csv --out DIR` answers one frame per CSV row (header = parameter names) with
 the local engine from the registry, or with a running service when --url is given; it writes the
-accepted frames as PNG plus report.csv and report.json (confidence and detail share per target).
+accepted frames as PNG (target_0001.png, ...) plus report.csv and report.json (confidence and detail
+share per target; report.json is the manifest of the service's ZIP answer, schemas.FillManifestOut).
 Exit 2 on bad input.
 """
 from __future__ import annotations
 
 import csv
-import io
 import json
 import logging
 import math
@@ -90,8 +90,9 @@ def read_targets(path: str | Path, *, max_targets: int = 100_000) -> tuple[list[
 
 # -- fill ---------------------------------------------------------------------------------------
 def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable[[int, int], None],
-                chunk: int = 32) -> dict:
-    from .imaging import encode_png
+                chunk: int = 32):
+    """The fill answered by the local engine, as the service would answer it (answers.Answer)."""
+    from .answers import fill_answer, fill_frames
     from .registry import Registry
 
     engine, entry = open_engine(Registry.open(args.registry), args.name, args.version)
@@ -103,53 +104,46 @@ def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable
     frames = []
     progress(0, len(targets))
     for lo in range(0, len(targets), chunk):
-        for k, f in enumerate(engine.fill(targets[lo:lo + chunk], min_confidence=args.min_confidence,
-                                          refine=not args.no_refine)):
-            frames.append({"index": lo + k + 1, "target": dict(targets[lo + k]), "png": encode_png(f.image),
-                           "confidence": f.confidence, "accepted": f.accepted, "params": f.params,
-                           "detail": f.detail})
+        part = targets[lo:lo + chunk]
+        frames += fill_frames(engine.fill(part, min_confidence=args.min_confidence, refine=not args.no_refine),
+                              part, offset=lo)
         progress(len(frames), len(targets))
-    return {"model": entry.name, "version": entry.version, "frames": frames}
+    return fill_answer(frames, entry.name, entry.version)
 
 
-def _fill_remote(args, targets: Sequence[Mapping[str, float]], progress: Callable[[int, int], None]) -> dict:
+def _fill_remote(args, targets: Sequence[Mapping[str, float]], progress: Callable[[int, int], None]):
+    """The fill answered by a running service (its PNGs kept byte for byte)."""
+    from .answers import from_wire
     from .client import Client
 
     with Client(args.url) as client:
-        result = client.fill(args.name, targets, min_confidence=args.min_confidence, version=args.version,
-                             progress=progress, refine=not args.no_refine)
-    frames = []
-    for f in result.frames:
-        buf = io.BytesIO()
-        f.pil().save(buf, format="PNG")
-        frames.append({"index": f.index, "target": f.target or dict(targets[f.index - 1]), "png": buf.getvalue(),
-                       "confidence": f.confidence, "accepted": f.accepted, "params": f.params,
-                       "detail": f.detail})
-    return {"model": result.model, "version": result.version, "frames": frames}
+        return from_wire(client.fill(args.name, targets, min_confidence=args.min_confidence, version=args.version,
+                                     progress=progress, refine=not args.no_refine))
 
 
-def _write_fill(out: Path, names: Sequence[str], answer: dict) -> dict:
+def _write_fill(out: Path, names: Sequence[str], answer):
+    """Accepted frames as PNG, report.json (the ZIP answer's manifest, a FillManifestOut) and report.csv;
+    returns the manifest."""
+    from .answers import frame_file, manifest_json, to_wire
+
     out.mkdir(parents=True, exist_ok=True)
-    rows = []
-    for f in answer["frames"]:
-        file = f"target_{f['index']:04d}.png" if f["accepted"] else None
+    files = []
+    for f in answer.frames:
+        file = frame_file("fill", f.fields["index"]) if f.accepted else None
         if file:
-            (out / file).write_bytes(f["png"])
-        rows.append({"index": f["index"], "target": f["target"], "confidence": f["confidence"],
-                     "accepted": f["accepted"], "file": file, "params": f["params"], "detail": f["detail"]})
-    accepted = sum(r["accepted"] for r in rows)
-    report = {"model": answer["model"], "version": answer["version"], "targets": len(rows), "accepted": accepted,
-              "rejected": len(rows) - accepted, "synthesized": True, "notice": NOTICE, "frames": rows}
-    (out / "report.json").write_text(json.dumps(report, indent=1))
+            (out / file).write_bytes(f.png)
+        files.append(file)
+    report = to_wire(answer, files)
+    (out / "report.json").write_text(manifest_json(report))
     with open(out / "report.csv", "w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh)
         # detail last, so the columns before it keep their places; empty when the model does not refine
         w.writerow(["index", *names, "confidence", "accepted", "file", *[f"shown_{n}" for n in names], "detail"])
-        for r in rows:
-            conf = "" if r["confidence"] is None else f"{r['confidence']:.6f}"
-            detail = "" if r["detail"] is None else f"{r['detail']:.6f}"
-            w.writerow([r["index"], *[r["target"].get(n, "") for n in names], conf, int(r["accepted"]),
-                        r["file"] or "", *[f"{r['params'].get(n, float('nan')):.6g}" for n in names], detail])
+        for r in report.frames:
+            conf = "" if r.confidence is None else f"{r.confidence:.6f}"
+            detail = "" if r.detail is None else f"{r.detail:.6f}"
+            w.writerow([r.index, *[r.target.get(n, "") for n in names], conf, int(r.accepted), r.file or "",
+                        *[f"{r.params.get(n, float('nan')):.6g}" for n in names], detail])
     return report
 
 
@@ -170,7 +164,7 @@ def cmd_fill(args) -> int:
         return EXIT_BAD_INPUT if exc.status is not None and 400 <= exc.status < 500 else EXIT_SERVICE
     bar.close()
     report = _write_fill(Path(args.out), names, answer)
-    print(f"{report['accepted']} of {report['targets']} frames accepted, written to {args.out} "
+    print(f"{report.accepted} of {len(report.frames)} frames accepted, written to {args.out} "
           f"(report.csv, report.json); {NOTICE}")
     return EXIT_OK
 

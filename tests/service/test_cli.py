@@ -78,8 +78,10 @@ def test_between_writes_frames_and_manifest(small_registry, tmp_path, capsys):
     assert manifest["synthesized"] is True
     assert [f["index"] for f in manifest["frames"]] == [1, 2, 3, 4]
     assert [f["t"] for f in manifest["frames"]] == pytest.approx([0.2, 0.4, 0.6, 0.8], abs=1e-6)
+    # the files are named as in the ZIP answer (tests/service/test_contract.py checks the whole manifest)
+    assert [f["file"] for f in manifest["frames"]] == [f"frame_{i:04d}.png" for i in range(1, 5)]
     for f in manifest["frames"]:
-        assert (out / f["image"]).is_file() and 0 <= f["confidence"] <= 1
+        assert (out / f["file"]).is_file() and 0 <= f["confidence"] <= 1
 
 
 def test_between_strict_exits_3_when_frames_are_rejected(small_registry, tmp_path):
@@ -89,7 +91,8 @@ def test_between_strict_exits_3_when_frames_are_rejected(small_registry, tmp_pat
                  "--min-confidence", "1.0", "--strict"])
     assert code == 3  # min confidence 1.0 rejects every frame (probabilities are capped below 1)
     manifest = json.loads((out / "manifest.json").read_text())
-    assert manifest["rejected"] == 3 and all(f["image"] is None for f in manifest["frames"])
+    assert manifest["rejected"] == 3 and all(f["file"] is None for f in manifest["frames"])
+    assert sorted(p.name for p in out.iterdir()) == ["latent_map.png", "manifest.json"]
 
 
 @pytest.mark.parametrize("start, message", [
