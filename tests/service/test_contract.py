@@ -64,6 +64,7 @@ def validator(doc: dict, *where: str) -> Draft202012Validator:
     for key in where:
         node = node[key]
     assert isinstance(node, dict) and node, f"no schema at {where}"
+    # a JSON Pointer in a URI fragment: "~" -> "~0", "/" -> "~1", then percent-encoded (RFC 6901, 3 and 6)
     pointer = "".join("/" + quote(k.replace("~", "~0").replace("/", "~1"), safe="~") for k in where)
     registry = SchemaRegistry().with_resource(DOC_URI, Resource(contents=doc, specification=DRAFT202012))
     return Draft202012Validator({"$ref": f"{DOC_URI}#{pointer}"}, registry=registry)
@@ -174,7 +175,7 @@ def test_cli_between_manifest_is_the_zip_manifest(client, doc, registry, tmp_pat
     for name, extra in (("cal", ["--min-confidence", "0.5"]), ("fine", ["--keep-rejected"])):
         out = tmp_path / name
         assert main(["--registry", str(registry.root), "between", name, *ends, "--frames", "5", "--out", str(out),
-                     *extra]) in (0, 3)
+                     *extra]) == 0  # rejected frames fail the command only under --strict
         manifest = json.loads((out / "manifest.json").read_text())
         check(schema, manifest)
         assert manifest["latent_map"] == "latent_map.png" and (out / "latent_map.png").is_file()
