@@ -45,10 +45,11 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
     report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png")
     # timings on the demo bank
     rng = np.random.default_rng(0)
-    ends = engine.bundle.codes[rng.integers(0, len(engine.bundle.codes), size=(50, 2))]
+    pairs = rng.integers(0, len(engine.bundle.codes), size=(50, 2))
+    codes, params = engine.bundle.codes, engine.bundle.params
     t = time.perf_counter()
-    for a, b in ends:
-        engine.route_line(a, b)
+    for a, b in pairs:
+        engine.route(codes[a], params[a], codes[b], params[b]).codes_at(np.linspace(0, 1, 18)[1:-1])
     route_ms = (time.perf_counter() - t) / len(ends) * 1e3
     imgs = engine.bundle.images()
     times = []

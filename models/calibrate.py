@@ -19,18 +19,21 @@ from dataclasses import replace
 
 import numpy as np
 
-from . import route as lroute
 from .bundle import Bundle
-from .confidence import fit_confidence
+from .confidence import BoundConfidence, fit_confidence
 from .engine import FITTED_SIGNALS, REFINED_SIGNALS, ROUTES, Engine, ServingConfig
 from .manifest import Calibration, Confidence, Manifest, RefineChoice, RefineHoldout, RouteChoice, Scores
 from .metrics import psnr_batch, ssim_batch
 from .nets import Autoencoder
 from .refine import RefineConfig
+from .params import SPAN_BUCKETS, span_bucket
 from .triplets import mine_triplets
 
 DEFAULT_TAU = 0.90
-TUBES = (0.75, 1.0, 1.25, 1.5, 2.0)  # candidate tube radii, in bank spacings
+MIN_FIT_ROWS, MIN_PER_CLASS = 12, 3  # fewer held-out frames, or of one kind, and no curve is fitted
+SSIM_QUANTILES = (10, 50, 90)  # reported held-out SSIM quantiles of geodesic frames: which tau is reachable
+TUBES = (0.5, 0.75, 1.0, 1.5, 2.0)  # candidate tube radii, in local sample spacings
+MAX_SPAN = 12.0  # sample spacings: the longest calibration route (mining cost grows with its square)
 REFINE_MARGIN_DB = 0.2  # detail transfer must win by this much mean PSNR on the held-out truth
 REFINE_TOLERANCES = (0.05, 0.03)  # candidate trust tolerances (models.refine); the first is the default
 # candidate flow settings for detail transfer, cheapest first: "none" (bank images where they
@@ -45,23 +48,41 @@ REFINE_TIE_DB = 0.1
 REFINE_TIE_SSIM = 0.001
 
 
-def bracketed(engine: Engine, holdout_params: np.ndarray, *, span: float = 6.0, tolerance: float = 0.15,
+def bracketed(engine: Engine, holdout_params: np.ndarray, *, span: float | None = None, tolerance: float = 0.15,
               max_triplets: int = 400, seed: int = 0):
     """Triplets (s, m, t, a) with s, t bank samples and m a held-out one on their segment; m is
-    indexed into the held-out share. At most max_triplets, drawn with `seed`."""
-    n_bank = len(engine.bundle.params)
-    allp = np.vstack([engine.bundle.params, holdout_params])
-    trip = mine_triplets(allp, engine.space, scale=engine.scale, span=span, tolerance=tolerance)
+    indexed into the held-out share. Routes of every span are drawn: `span` (sample spacings)
+    defaults to the farthest two settings can be (half a periodic setting's period, a whole
+    range), up to MAX_SPAN; at most max_triplets, an equal share from each SPAN_BUCKETS bucket that
+    has triplets, drawn with `seed`."""
+    space, params = engine.space, engine.bundle.params
+    if span is None:
+        farthest = np.where(space.periodic, 0.5 * space.span, space.span) / engine.scale
+        span = float(min(np.max(farthest), MAX_SPAN))
+    n_bank = len(params)
+    allp = np.vstack([params, holdout_params])
+    trip = mine_triplets(allp, space, scale=engine.scale, span=span, tolerance=tolerance)
     order = np.nonzero((trip.m >= n_bank) & (trip.s < n_bank) & (trip.t < n_bank))[0]
     if len(order) > max_triplets:
-        order = np.sort(np.random.default_rng(seed).choice(order, size=max_triplets, replace=False))
+        rng = np.random.default_rng(seed)
+        buckets = np.array([span_bucket(r) for r in space.reach(allp[trip.s[order]], allp[trip.t[order]])])
+        names = [n for n, _ in SPAN_BUCKETS if np.any(buckets == n)]
+        share, picked = max_triplets // len(names), []
+        for name in names:
+            members = order[buckets == name]
+            picked.append(rng.choice(members, size=min(share, len(members)), replace=False))
+        order = np.sort(np.concatenate(picked))
     return trip.s[order], trip.m[order] - n_bank, trip.t[order], trip.a[order]
 
 
-def route_codes(engine: Engine, s: np.ndarray, t: np.ndarray, a: np.ndarray, route: str) -> np.ndarray:
-    """(len(s), d) codes at fraction a of the route from bank code s to bank code t."""
+def route_codes(engine: Engine, s: np.ndarray, t: np.ndarray, a: np.ndarray, route: str,
+                tube: float | None = None, *, image_ends: bool = False) -> np.ndarray:
+    """(len(s), d) codes at fraction a of the route from bank sample s to bank sample t. The ends
+    are given as settings (the samples' own), or with image_ends as a request with image ends gives
+    them: the image's code (a bank code is its image's encoding) with the settings the head reads."""
     codes = engine.bundle.codes
-    return np.array([lroute.at_t(engine.route_line(codes[i], codes[j], route)[0], [f])[0]
+    params = engine.settings_of(codes) if image_ends else engine.bundle.params
+    return np.array([engine.route(codes[i], params[i], codes[j], params[j], route, tube).codes_at([f])[0]
                      for i, j, f in zip(s, t, a)]).reshape(len(s), codes.shape[1])
 
 
@@ -72,18 +93,10 @@ def choose_tube(engine: Engine, holdout_params: np.ndarray, holdout_images: np.n
     s, m, t, a = bracketed(engine, holdout_params, seed=seed)
     if len(s) == 0:
         return engine.tube, {}
-    codes, relaxed, scores = engine.bundle.codes, {}, {}
+    scores = {}
     for tube in map(float, candidates):
-        at = []
-        for j, (i, k, f) in enumerate(zip(s, t, a)):  # the graph path does not depend on the tube: once each
-            if engine.chord_inside(codes[i], codes[k], tube):
-                line = np.vstack([codes[i], codes[k]])
-            else:
-                if j not in relaxed:
-                    relaxed[j] = engine.relaxed_path(codes[i], codes[k])[0]
-                line = engine.pulled_taut(relaxed[j], tube)
-            at.append(lroute.at_t(line, [f])[0])
-        scores[tube] = float(np.mean(psnr_batch(engine.decode(np.array(at)), holdout_images[m])))
+        at = route_codes(engine, s, t, a, "geodesic", tube)
+        scores[tube] = float(np.mean(psnr_batch(engine.decode(at), holdout_images[m])))
     best = max(scores, key=lambda c: (round(scores[c], 6), -c))
     engine.tube = best
     return best, {str(c): round(v, 3) for c, v in scores.items()}
@@ -146,18 +159,21 @@ def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np
 
 
 def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
-                       span: float = 6.0, tolerance: float = 0.15, max_triplets: int = 400,
+                       span: float | None = None, tolerance: float = 0.15, max_triplets: int = 400,
                        seed: int = 0, refine: bool = True) -> tuple[np.ndarray, np.ndarray, list[str]]:
     """Signals (N, len(engine.scoring(refine)[0])), SSIM (N,) against the truth, and each row's
-    kind, for the frames as a request with `refine` is served."""
+    kind, for the frames as a request with `refine` is served: routes of every span (`bracketed`),
+    by both routes, half with settings ends and half with image ends, and fill frames."""
     s, m, t, a = bracketed(engine, holdout_params, span=span, tolerance=tolerance, max_triplets=max_triplets,
                            seed=seed)
     codes, intended, truth, kinds = [], [], [], []
+    image = np.arange(len(s)) % 2 == 1
     for route in ROUTES:
-        codes += list(route_codes(engine, s, t, a, route))
-        intended += list(holdout_params[m])
-        truth += list(m)
-        kinds += [route] * len(s)
+        for ends, rows in (("settings", ~image), ("image", image)):
+            codes += list(route_codes(engine, s[rows], t[rows], a[rows], route, image_ends=ends == "image"))
+            intended += list(holdout_params[m[rows]])
+            truth += list(m[rows])
+            kinds += [route] * int(rows.sum())
     fill_codes = engine.code_of_settings(holdout_params)
     codes += list(fill_codes)
     intended += list(holdout_params)
@@ -180,12 +196,20 @@ def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images:
         raise ValueError(f"tau: {tau!r} is outside (0, 1)")
     sig, ssim, kinds = calibration_frames(engine, holdout_params, holdout_images, seed=seed, refine=refine)
     outcome = (ssim >= tau).astype(float)
+    geodesic = np.array([k == "geodesic" for k in kinds])
+    reach = ssim[geodesic] if geodesic.any() else ssim
     base = dict(tau=tau, rows=int(len(outcome)), rows_by_kind={k: kinds.count(k) for k in sorted(set(kinds))},
-                faithful_share=round(float(outcome.mean()), 4) if len(outcome) else None)
-    if len(outcome) < 12 or outcome.sum() < 3 or (1 - outcome).sum() < 3:
-        # too few frames of one kind to fit: no confidence rather than a made-up one
-        return None, Calibration(status="not fitted: too few faithful or unfaithful held-out frames", **base)
+                faithful_share=round(float(outcome.mean()), 4) if len(outcome) else None,
+                ssim_quantiles={f"p{q}": round(float(np.quantile(reach, q / 100)), 4) for q in SSIM_QUANTILES}
+                if len(reach) else {})
     names = list(engine.scoring(refine)[0])
+    if len(outcome) < MIN_FIT_ROWS or outcome.sum() < MIN_PER_CLASS or (1 - outcome).sum() < MIN_PER_CLASS:
+        # too few frames of one kind to fit a curve: one conservative rate for every frame (0 when
+        # no held-out frame reached tau), never "no confidence" (a frame nobody judged is never let through)
+        bound = BoundConfidence(names, successes=int(outcome.sum()), trials=len(outcome))
+        status = (f"bound: {int(outcome.sum())} of {len(outcome)} held-out frames reached SSIM {tau:g}, too few of "
+                  f"one kind to fit a curve; every frame gets {bound.rate:.3f}")
+        return Confidence(tau=tau, signals=tuple(names), model=bound.to_dict()), Calibration(status=status, **base)
     model, report = fit_confidence(sig, outcome, names=names, seed=seed)
     summary = Calibration(status="fitted", ece=report.get("ece"), auroc=report.get("auroc"),
                           method=report.get("method"), report=report, **base)

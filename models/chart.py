@@ -8,7 +8,15 @@ loop of per-point solves.
 """
 from __future__ import annotations
 
+from typing import Callable
+
 import numpy as np
+from scipy.spatial import cKDTree
+
+from .params import ParamSpace
+from .triplets import normalised_coords
+
+EXACT = 1e-9  # spacing units: a settings point this close to a sample takes its code as it is
 
 
 def local_affine(offsets: np.ndarray, values: np.ndarray, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -36,3 +44,33 @@ def local_affine(offsets: np.ndarray, values: np.ndarray, weights: np.ndarray) -
     rhs = np.einsum("nki,nkd->nid", u, z * root) * inv[..., None]  # (N, P + 1, d)
     intercept = np.einsum("ni,nid->nd", vt[:, :, 0], rhs)
     return intercept, determined
+
+
+class SettingsChart:
+    """Settings (N, P) -> codes (N, d): at each point, the weighted affine fit over the `neighbours`
+    bank samples nearest in settings (weights 1 / (distance + 0.25)^2, distances in sample
+    spacings), evaluated at the point; a sample's own settings give its own code. Where the
+    neighbours do not span every setting (all on a line), `fallback` (the settings-to-code head)
+    answers instead."""
+
+    def __init__(self, params: np.ndarray, codes: np.ndarray, space: ParamSpace, scale: np.ndarray, *,
+                 neighbours: int = 6, fallback: Callable[[np.ndarray], np.ndarray]):
+        self.params, self.codes = np.asarray(params, dtype=np.float64), np.asarray(codes, dtype=np.float64)
+        self.space, self.scale, self.fallback = space, np.asarray(scale, dtype=np.float64), fallback
+        self.neighbours = min(int(neighbours), len(self.codes))
+        u, self.box = normalised_coords(self.params, space, self.scale)
+        self.tree = cKDTree(u, boxsize=self.box)
+
+    def __call__(self, settings: np.ndarray) -> np.ndarray:
+        p = np.atleast_2d(np.asarray(settings, dtype=np.float64))
+        u = np.mod((self.space.wrap(p) - self.space.lo) / self.scale, self.box)
+        dist, idx = self.tree.query(u, k=self.neighbours)
+        dist, idx = dist.reshape(len(p), -1), idx.reshape(len(p), -1)
+        offsets = self.space.delta(p[:, None, :], self.params[idx]) / self.scale  # (N, k, P) spacing units
+        out, determined = local_affine(offsets, self.codes[idx], 1.0 / (dist + 0.25) ** 2)
+        exact = dist[:, 0] < EXACT
+        out[exact] = self.codes[idx[exact, 0]]
+        lost = ~determined & ~exact
+        if np.any(lost):
+            out[lost] = self.fallback(p[lost])
+        return out

@@ -25,14 +25,18 @@ class Clearance:
     local spacing; candidates: how many nearest bank codes each point is measured against (the
     nearest in code distance need not be the nearest in spacings where the spacing varies)."""
 
-    def __init__(self, bank: np.ndarray, *, dims: int = 1, tree: cKDTree | None = None, candidates: int = 4):
+    def __init__(self, bank: np.ndarray, *, dims: int = 1, tree: cKDTree | None = None, candidates: int = 4,
+                 box: np.ndarray | None = None):
         bank = np.asarray(bank, dtype=np.float64)
         if bank.ndim != 2 or len(bank) < 2:
             raise ValueError(f"bank: shape {bank.shape} not allowed; expected (N, d) with N >= 2")
         if isinstance(dims, bool) or not isinstance(dims, (int, np.integer)) or dims < 1:
             raise ValueError(f"dims: {dims!r} is out of range; allowed integers >= 1")
         self.bank = bank
-        self.tree = tree if tree is not None else cKDTree(bank)
+        # box: the period of each coordinate (inf where none), for points on a torus such as
+        # normalised settings with a periodic axis; points are wrapped into it before each look-up
+        self.box = None if box is None else np.asarray(box, dtype=np.float64)
+        self.tree = tree if tree is not None else cKDTree(bank, boxsize=self.box)
         k = min(2 * int(dims), len(bank) - 1)
         dist, _ = self.tree.query(bank, k=k + 1)  # the first is the code itself
         self.local = np.maximum(dist[:, k], _TINY)  # (N,) local spacing at each bank code
@@ -42,6 +46,9 @@ class Clearance:
     def nearest(self, points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(K,) clearance in local spacings and (K,) the bank index that gives it."""
         points = np.atleast_2d(np.asarray(points, dtype=np.float64))
+        if self.box is not None:
+            points = np.where(np.isfinite(self.box), np.mod(points, np.where(np.isfinite(self.box), self.box, 1.0)),
+                              points)
         dist, idx = self.tree.query(points, k=self.candidates)
         dist, idx = dist.reshape(len(points), -1), idx.reshape(len(points), -1)
         ratio = dist / self.local[idx]

@@ -1,19 +1,13 @@
 """Serving engine: one bundle in memory with its latent graph; frames between two ends.
 
 Ends are images (encoded) or settings (a local affine chart over the bank codes of the nearest
-samples in settings space, with the settings-to-code head as fallback). A geodesic route is the
-shortest path over the pruned kNN graph of bank codes, relaxed into a smooth curve (curve
-shortening), pulled taut inside a tube around the bank codes (`route.taut`; radius in bank
-spacings, chosen per model on the held-out share), then resampled at equal arc length. Pulling
-taut means: where the chord between two points of the relaxed path stays that close to real
-samples, the route takes the chord, since detours through bank nodes cost pacing and sharpness;
-where the chord would leave the tube (a gap, a bend of the manifold) the route keeps the bend.
-
-Projecting every relaxation round back with z <- E(D(z)) is available
-(ServingConfig.project_rounds), but on the demo model it cost 1.4 dB and three times the time:
-the collinearity and isometry terms keep the latent locally flat, so the cycle residual is
-reported as a signal instead. Every frame carries the settings it shows (code-to-settings head)
-and a calibrated confidence. Frames are synthesized, not captured.
+samples in settings space, with the settings-to-code head as fallback). Routes come from
+`geodesic.Planner`: the geodesic is found on the pruned kNN graph of bank codes, pulled taut in
+the settings chart within a tube of `tube` local sample spacings around real samples (chosen per
+model on held-out routes of every span), and charted back to codes, so its frames lie between
+real samples at every span; the straight route is the chord between the end codes. Every frame
+carries the settings it shows (code-to-settings head) and a calibrated confidence. Frames are
+synthesized, not captured.
 """
 from __future__ import annotations
 
@@ -25,21 +19,19 @@ from typing import Mapping, Sequence
 
 import numpy as np
 import torch
-from scipy.spatial import cKDTree
 
 from . import graph as lgraph
-from . import search as lsearch
 from . import route as lroute
 from .bundle import Bundle, load_bundle
+from .chart import SettingsChart
 from .confidence import ConfidenceModel
+from .geodesic import ROUTES, Planner, Route
 from . import refine as lrefine
 from .manifest import LEGACY_SIGNALS
 from .nets import inference_copy
 from .refine import RefineConfig
 from .train import to_images, to_tensor
-from .triplets import normalised_coords
 
-ROUTES = ("geodesic", "straight")
 SIGNALS = LEGACY_SIGNALS + ("detail",)  # every signal the engine can compute
 # what a new model's confidence is fitted on: image_cycle would cost a second decode per request
 # and adds nothing the cycle residual does not already carry (see bench/RESULTS.md). "nearest" is
@@ -58,31 +50,24 @@ class ServingConfig:
     """How an engine serves its bundle. `tube` and `refine` None: as the bundle chose at training
     time (manifest.route, manifest.refine); a value overrides that choice."""
     graph_k: int | None = None     # neighbours per bank code in the latent graph (None: the graph's k rule)
-    relax_rounds: int = 20         # curve-shortening rounds on a graph path
-    relax_step: float = 0.5        # share of the way to the neighbours' midpoint, per round
-    project_rounds: bool = False   # z <- E(D(z)) after every round (see the module docstring)
-    chart_neighbours: int = 6      # bank samples in the local chart of a settings end
+    chart_neighbours: int = 6      # bank samples in the local chart of a settings point
     attach: int = 3                # bank nodes each end of a route joins
-    tube: float | None = None      # bank spacings around the bank codes a route is pulled taut in
+    tube: float | None = None      # local sample spacings around real samples a geodesic is pulled taut in
     refine: bool | None = None     # detail transfer from the nearest real images, on or off
     refine_threads: int = 2        # threads that refine one answer's frames
 
     def __post_init__(self) -> None:
-        counts = {"relax_rounds": 0, "chart_neighbours": 1, "attach": 1, "refine_threads": 1}
+        counts = {"chart_neighbours": 1, "attach": 1, "refine_threads": 1}
         if self.graph_k is not None:
             counts["graph_k"] = 1
         for name, lo in counts.items():
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, int) or value < lo:
                 raise ValueError(f"{name}: {value!r} is out of range; allowed integers >= {lo}")
-        for name in ("project_rounds", "refine"):
-            value = getattr(self, name)
-            if not isinstance(value, bool) and not (name == "refine" and value is None):
-                raise ValueError(f"{name}: {value!r} is not allowed; expected true or false")
-        if not 0.0 < self.relax_step <= 1.0:
-            raise ValueError(f"relax_step: {self.relax_step!r} is outside (0, 1]")
+        if not isinstance(self.refine, bool) and self.refine is not None:
+            raise ValueError(f"refine: {self.refine!r} is not allowed; expected true or false")
         if self.tube is not None and not self.tube > 0.0:
-            raise ValueError(f"tube: {self.tube!r} is out of range; allowed > 0 bank spacings")
+            raise ValueError(f"tube: {self.tube!r} is out of range; allowed > 0 local sample spacings")
 
 
 @dataclass
@@ -102,7 +87,7 @@ class Frame:
     t: float                   # fraction of the route's length
     image: np.ndarray          # (H, W, C) float32 in [0, 1]
     params: dict[str, float]   # the settings the frame shows (code-to-settings head)
-    confidence: float | None   # calibrated probability that SSIM against the true view >= tau
+    confidence: float | None   # calibrated probability that SSIM against the true view >= tau (None: unjudged, never accepted)
     accepted: bool
     signals: dict[str, float] = field(default_factory=dict)
     detail: float | None = None  # share of pixels carried over from real bank images (None: not refined)
@@ -139,7 +124,7 @@ class Engine:
         self.space = bundle.space
         self.manifest = bundle.manifest
         self.scale = bundle.scale
-        # tube radius in bank spacings for pulling routes taut: the one chosen on the held-out share
+        # tube radius in local sample spacings for pulling routes taut: the one chosen on the held-out share
         # at training time (DEFAULT_TUBE for bundles without one) unless the config names one
         self.tube = self.manifest.route.tube if config.tube is None else config.tube
         # detail transfer from the nearest real images: as chosen on the held-out share at training
@@ -151,9 +136,9 @@ class Engine:
         self.graph = lgraph.build_graph(bundle.codes, k=config.graph_k, params=bundle.params, space=self.space,
                                         param_scale=self.scale, images=pixels.reshape(len(pixels), -1))
         del pixels
-        u, box = normalised_coords(bundle.params, self.space, self.scale)
-        self._box = box
-        self._settings_tree = cKDTree(u, boxsize=box)
+        self.chart = SettingsChart(bundle.params, bundle.codes, self.space, self.scale,
+                                   neighbours=config.chart_neighbours, fallback=self._head_codes)
+        self.planner = Planner(self.graph, self.space, bundle.params, self.scale, self.chart, attach=config.attach)
         nn, _ = self.graph.tree.query(self.graph.warped, k=2)
         self.spacing = float(np.median(nn[:, 1]))  # typical code distance between bank neighbours
         conf = self.manifest.confidence
@@ -252,28 +237,13 @@ class Engine:
 
     def code_of_settings(self, p: np.ndarray) -> np.ndarray:
         """(N, P) settings -> (N, d) codes by a local affine chart over the nearest bank samples."""
-        p = np.atleast_2d(np.asarray(p, dtype=np.float64))
-        k = min(self.config.chart_neighbours, len(self.bundle.codes))
-        u = np.mod((self.space.wrap(p) - self.space.lo) / self.scale, self._box)
-        dist, idx = self._settings_tree.query(u, k=k)
-        out = np.empty((len(p), self.bundle.codes.shape[1]))
-        for r in range(len(p)):
-            out[r] = self._chart(p[r], idx[r], dist[r])
-        return out
+        return self.chart(p)
 
-    def _chart(self, p: np.ndarray, idx: np.ndarray, dist: np.ndarray) -> np.ndarray:
-        codes = self.bundle.codes[idx]
-        if dist[0] < 1e-9:
-            return codes[0]
-        x = self.space.delta(p, self.bundle.params[idx]) / self.scale  # (k, P) offsets, spacing units
-        w = 1.0 / (dist + 0.25) ** 2
-        design = np.hstack([np.ones((len(idx), 1)), x]) * np.sqrt(w)[:, None]
-        if np.linalg.matrix_rank(design) < design.shape[1]:  # neighbours on a line: use the head
-            with torch.inference_mode():
-                f = torch.as_tensor(self.space.features(p[None]), dtype=torch.float32)
-                return self.model.to_code(f).double().numpy()[0]
-        coef, *_ = np.linalg.lstsq(design, codes * np.sqrt(w)[:, None], rcond=None)
-        return coef[0]  # the chart's value at the offset 0, i.e. at p
+    @torch.inference_mode()
+    def _head_codes(self, p: np.ndarray) -> np.ndarray:
+        """(N, P) settings -> (N, d) codes by the settings-to-code head (the chart's fallback)."""
+        f = torch.as_tensor(self.space.features(p), dtype=torch.float32)
+        return self.model.to_code(f).double().numpy()
 
     def end_code(self, end: Endpoint) -> tuple[np.ndarray, np.ndarray]:
         """Code and settings (P,) of one end; settings of an image end are read by the head."""
@@ -284,54 +254,15 @@ class Engine:
         return self.code_of_settings(p[None])[0], p
 
     # -- routes -------------------------------------------------------------------------------
-    @torch.inference_mode()
-    def project(self, codes: np.ndarray) -> np.ndarray:
-        """z <- E(D(z)): back onto the manifold the autoencoder has learned."""
-        z = torch.as_tensor(codes, dtype=torch.float32)
-        return self.model.encoder(self.model.decoder(z)).double().numpy()
-
-    def route_line(self, z_start: np.ndarray, z_end: np.ndarray, route: str = "geodesic"
-                   ) -> tuple[np.ndarray, np.ndarray]:
-        """The route's polyline (M, d) from z_start to z_end and the bank nodes it passes."""
-        if route not in ROUTES:
-            raise ValueError(f"route: {route!r} is not allowed; expected one of {list(ROUTES)}")
-        if route == "straight":
-            return np.vstack([z_start, z_end]), np.zeros(0, dtype=np.int64)
-        if self.chord_inside(z_start, z_end):
-            # the chord keeps within the tube, so pulling any path taut ends in it
-            return np.vstack([z_start, z_end]), np.zeros(0, dtype=np.int64)
-        relaxed, nodes = self.relaxed_path(z_start, z_end)
-        return self.pulled_taut(relaxed), nodes
-
-    def _tube(self, tube: float | None):
-        """(clearance function in the graph's metric, where the tube is round; limit; step)."""
-        g = self.graph
-        return (lambda w: g.tree.query(w, k=1)[0]), tube * self.spacing, 0.25 * self.spacing
-
-    def chord_inside(self, z_start: np.ndarray, z_end: np.ndarray, tube: float | None = None) -> bool:
-        """True when the straight chord keeps within the tube (radius `tube`, default self.tube)."""
-        tube = self.tube if tube is None else tube
-        if tube is None:
-            return False
-        clearance, limit, step = self._tube(tube)
-        return lroute.segment_within(self.graph.warp(z_start), self.graph.warp(z_end), clearance, limit, step=step)
-
-    def relaxed_path(self, z_start: np.ndarray, z_end: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """The graph's shortest path between the ends, relaxed (curve shortening), and its nodes."""
-        line, nodes = lsearch.path_with_ends(self.graph, z_start, z_end, attach=self.config.attach, return_nodes=True)
-        # midpoints give the relaxation room to round corners between bank nodes
-        dense = lroute.at_t(line, np.linspace(0.0, 1.0, 2 * len(line) - 1))
-        cfg = self.config
-        return lroute.relax(dense, self.project if cfg.project_rounds else None,
-                            rounds=cfg.relax_rounds, step=cfg.relax_step), nodes
-
-    def pulled_taut(self, line: np.ndarray, tube: float | None = None) -> np.ndarray:
-        """`line` pulled taut in the tube (radius `tube`, default self.tube; None: unchanged)."""
-        tube = self.tube if tube is None else tube
-        if tube is None:
-            return line
-        clearance, limit, step = self._tube(tube)
-        return line[lroute.taut(self.graph.warp(line), clearance, limit, step=step)]
+    def route(self, z_start: np.ndarray, p_start: np.ndarray, z_end: np.ndarray, p_end: np.ndarray,
+              kind: str = "geodesic", tube: float | None = None) -> Route:
+        """The route between two ends given by their codes (d,) and settings (P,); the geodesic is
+        pulled taut within `tube` local sample spacings (default self.tube)."""
+        if kind not in ROUTES:
+            raise ValueError(f"route: {kind!r} is not allowed; expected one of {list(ROUTES)}")
+        if kind == "straight":
+            return self.planner.straight(z_start, z_end)
+        return self.planner.geodesic(z_start, p_start, z_end, p_end, self.tube if tube is None else tube)
 
     # -- confidence ---------------------------------------------------------------------------
     def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray,
@@ -373,7 +304,7 @@ class Engine:
         for i in range(len(codes)):
             c = None if conf is None else float(conf[i])
             frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(shown[i]),
-                                confidence=c, accepted=c is None or c >= min_confidence,
+                                confidence=c, accepted=c is not None and c >= min_confidence,
                                 signals=dict(zip(names, map(float, sig[i]))),
                                 detail=None if detail is None else float(detail[i])))
         return frames
@@ -389,12 +320,13 @@ class Engine:
             raise ValueError(f"min_confidence: {min_confidence!r} is outside [0, 1]")
         zs, ps = self.end_code(start)
         ze, pe = self.end_code(end)
-        line, nodes = self.route_line(zs, ze, route)
-        codes, t = lroute.resample(line, frames, return_t=True)
+        way = self.route(zs, ps, ze, pe, route)
+        t = lroute.interior_t(frames)
+        codes = way.codes_at(t)
         intended = self.space.lerp(ps, pe, t)
         return Answer(route=route, frames=self.frames_at(codes, t, intended, min_confidence, refine),
                       start_params=self.space.named(ps), end_params=self.space.named(pe),
-                      codes=codes, path_nodes=nodes, ends=np.stack([zs, ze]))
+                      codes=codes, path_nodes=way.nodes, ends=np.stack([zs, ze]))
 
     def fill(self, targets: Sequence[Mapping[str, float]], min_confidence: float = 0.5,
              refine: bool = True) -> list[Frame]:

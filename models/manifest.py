@@ -150,18 +150,21 @@ class Calibration:
     rows: int | None = None                     # held-out frames with a known truth
     rows_by_kind: Mapping[str, int] = field(default_factory=dict)  # geodesic, straight, fill
     faithful_share: float | None = None         # share of those frames with SSIM >= tau
+    ssim_quantiles: Mapping[str, float] = field(default_factory=dict)  # geodesic frames' SSIM p10, p50, p90
     ece: float | None = None                    # expected calibration error, 15 bins, rows not fitted on
     auroc: float | None = None
     method: str | None = None                   # "platt" or "isotonic"
     report: Mapping[str, Any] | None = None     # the fit's own report (reliability bins and more)
     decoded_frames: "Calibration | None" = None  # a refining model's second confidence, on decoded frames
 
-    FIELDS = ("tau", "rows", "rows_by_kind", "faithful_share", "status", "ece", "auroc", "method", "report",
-              "decoded_frames")
+    FIELDS = ("tau", "rows", "rows_by_kind", "faithful_share", "ssim_quantiles", "status", "ece", "auroc", "method",
+              "report", "decoded_frames")
 
     def to_dict(self) -> dict:
         out = {"tau": self.tau, "rows": self.rows, "rows_by_kind": dict(self.rows_by_kind),
                "faithful_share": self.faithful_share, "status": self.status}
+        if self.ssim_quantiles:  # bundles trained before it was recorded have none
+            out["ssim_quantiles"] = dict(self.ssim_quantiles)
         for key in ("ece", "auroc", "method", "report", "decoded_frames"):
             value = getattr(self, key)
             if value is not None:
@@ -180,6 +183,8 @@ class Calibration:
                    rows_by_kind={k: _int(v, f"{where}.rows_by_kind.{k}")
                                  for k, v in _obj(d.get("rows_by_kind", {}), f"{where}.rows_by_kind").items()},
                    faithful_share=_num(d.get("faithful_share"), f"{where}.faithful_share", none=True),
+                   ssim_quantiles={k: _num(v, f"{where}.ssim_quantiles.{k}")
+                                   for k, v in _obj(d.get("ssim_quantiles", {}), f"{where}.ssim_quantiles").items()},
                    ece=_num(d.get("ece"), f"{where}.ece", none=True),
                    auroc=_num(d.get("auroc"), f"{where}.auroc", none=True),
                    method=_str(d.get("method"), f"{where}.method", none=True),

@@ -34,6 +34,16 @@ class Parameter:
                    unit=str(d.get("unit", "")), periodic=bool(d.get("periodic", False)))
 
 
+# Span buckets by `ParamSpace.reach`: up to a quarter of a periodic setting's period (or half the
+# range of another), up to three eighths (three quarters of the range), and beyond.
+SPAN_BUCKETS = (("short", 0.5), ("medium", 0.75), ("long", 1.0))
+
+
+def span_bucket(reach: float) -> str:
+    """The name of the SPAN_BUCKETS bucket a reach in [0, 1] falls in."""
+    return next((name for name, top in SPAN_BUCKETS if reach <= top + 1e-9), SPAN_BUCKETS[-1][0])
+
+
 class ParamSpace:
     """The ordered parameters of one scene, with periodic-aware geometry."""
 
@@ -75,6 +85,13 @@ class ParamSpace:
         d = np.asarray(b, dtype=np.float64) - np.asarray(a, dtype=np.float64)
         short = d - self.span * np.round(d / self.span)
         return np.where(self.periodic, short, d)
+
+    def reach(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        """How far apart a and b are, as a share in [0, 1] of the farthest two settings can be: per
+        axis |delta| over half the period (periodic: the longest short arc) or over the whole range
+        (others), the largest over the axes. Routes are bucketed by it (SPAN_BUCKETS)."""
+        farthest = np.where(self.periodic, 0.5 * self.span, self.span)
+        return np.max(np.abs(self.delta(a, b)) / farthest, axis=-1)
 
     def lerp(self, a: np.ndarray, b: np.ndarray, t: np.ndarray | float) -> np.ndarray:
         """Point at fraction t from a to b (short arc); t broadcasts against a trailing axis."""

@@ -176,7 +176,7 @@ def test_serving_config_overrides_the_bundles_choices_and_checks_its_values():
     ans = engine.between(Endpoint(params=START), Endpoint(params=END), frames=2)
     assert all(f.detail is None for f in ans.frames)
     for bad, name in ((dict(refine_threads=0), "refine_threads"), (dict(tube=0.0), "tube"),
-                      (dict(refine="bundle"), "refine"), (dict(relax_step=1.5), "relax_step"),
+                      (dict(refine="bundle"), "refine"), (dict(attach=0), "attach"),
                       (dict(graph_k=2.5), "graph_k")):
         with pytest.raises(ValueError, match=name):
             ServingConfig(**bad)
