@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from .params import Parameter, ParamSpace
+from .params import SPAN_BUCKETS, Parameter, ParamSpace
 from .render import grid_pairs, write_truth_set
 
 PHOTO_SPACE = ParamSpace([Parameter("pan", 0.0, 1.0), Parameter("zoom", 0.0, 1.0)])
@@ -81,9 +81,21 @@ def photo_pairs(count: int = 90, *, seed: int = 0, min_steps: int = 2, max_steps
                       min_steps=min_steps, max_steps=max_steps)
 
 
+# Long pairs: at least this many grid steps apart, the fewest whose reach (steps / 11 of the range)
+# lies beyond the medium span bucket, up to the whole range.
+LONG_MIN_STEPS = int(np.floor(SPAN_BUCKETS[1][1] * (len(GRID_PAN) - 1))) + 1  # 9 of 11
+
+
+def photo_long_pairs(count: int = 24, *, seed: int = 0) -> list[dict]:
+    """Long pairs: LONG_MIN_STEPS to 11 grid steps (the whole range) apart along pan, zoom or a diagonal."""
+    return grid_pairs(PHOTO_SPACE, (GRID_PAN, GRID_ZOOM), PHOTO_DIRECTIONS, count, seed=seed,
+                      min_steps=LONG_MIN_STEPS, max_steps=len(GRID_PAN) - 1)
+
+
 def write_photo_scene(photo: np.ndarray, out: str | Path, *, size: int = 64, pairs: int = 90,
-                      seed: int = 0) -> tuple[Path, Path]:
-    """Write OUT/scene (144 grid views, RGB PNGs) and OUT/truth (in-betweens at t = 1/6 ... 5/6)."""
+                      long_pairs: int = 24, seed: int = 0) -> tuple[Path, Path]:
+    """Write OUT/scene (144 grid views, RGB PNGs) and OUT/truth (in-betweens at t = 1/6 ... 5/6):
+    `pairs` pairs from `photo_pairs` (2 to 6 grid steps), then `long_pairs` from `photo_long_pairs`."""
     from .scene import save_scene
 
     photo = _check_photo(photo)
@@ -92,6 +104,7 @@ def write_photo_scene(photo: np.ndarray, out: str | Path, *, size: int = 64, pai
     grid = photo_grid()
     images = np.stack([view(photo, pan, zoom, size) for pan, zoom in grid])
     scene_dir = save_scene(out / "scene", PHOTO_NAME, PHOTO_SPACE, images, grid)
-    truth_dir = write_truth_set(out / "truth", photo_pairs(pairs, seed=seed),
+    chosen = photo_pairs(pairs, seed=seed) + photo_long_pairs(long_pairs, seed=seed)
+    truth_dir = write_truth_set(out / "truth", chosen,
                                 lambda p: view(photo, p[0], p[1], size), PHOTO_SPACE)
     return scene_dir, truth_dir

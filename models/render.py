@@ -246,9 +246,38 @@ def truth_pairs(count: int = 90, *, seed: int = 0, min_steps: int = 2, max_steps
                       min_steps=min_steps, max_steps=max_steps)
 
 
-def write_demo(out: str | Path, *, size: int = 64, pairs: int = 90, seed: int = 0,
+# Long pairs: along azimuth 7 to 11 grid steps (105-165 deg), up to the longest short arc the 15 deg
+# grid holds below half a turn (at exactly 180 deg both ways round are as short, so the true frames
+# would be ambiguous); along elevation the whole range (20 to 70 deg).
+LONG_AZIMUTH_STEPS = (7, 11)
+LONG_FULL_RANGE_SHARE = 0.25  # of the long pairs, the share (rounded down) across the whole elevation range
+
+
+def long_truth_pairs(count: int = 40, *, seed: int = 0) -> list[dict]:
+    """Long pairs of demo grid settings: `count` minus a quarter (rounded down) along azimuth,
+    LONG_AZIMUTH_STEPS grid steps apart on the short arc, then the quarter from the lowest to the
+    highest elevation at one azimuth (at most one per azimuth grid value)."""
+    if count < 0:
+        raise ValueError(f"long pairs: count must be >= 0, got {count}")
+    full = int(count * LONG_FULL_RANGE_SHARE)
+    if full > len(GRID_AZIMUTH):
+        raise ValueError(f"long pairs: {count} asks for {full} full-range elevation pairs; the grid holds "
+                         f"{len(GRID_AZIMUTH)} (one per azimuth), so ask for at most "
+                         f"{round((len(GRID_AZIMUTH) + 1) / LONG_FULL_RANGE_SHARE) - 1}")
+    axes = (GRID_AZIMUTH, GRID_ELEVATION)
+    lo, hi = LONG_AZIMUTH_STEPS
+    along = grid_pairs(DEMO_SPACE, axes, {"azimuth": TRUTH_DIRECTIONS["azimuth"]}, count - full, seed=seed,
+                       min_steps=lo, max_steps=hi)
+    whole = len(GRID_ELEVATION) - 1
+    across = grid_pairs(DEMO_SPACE, axes, {"elevation": TRUTH_DIRECTIONS["elevation"]}, full, seed=seed,
+                        min_steps=whole, max_steps=whole)
+    return along + across
+
+
+def write_demo(out: str | Path, *, size: int = 64, pairs: int = 90, long_pairs: int = 40, seed: int = 0,
                colour: bool = False) -> tuple[Path, Path]:
-    """Write OUT/scene (training scene folder, 144 grid renders) and OUT/truth (see `write_truth`).
+    """Write OUT/scene (training scene folder, 144 grid renders) and OUT/truth (see `write_truth`):
+    `pairs` pairs from `truth_pairs` (2 to 6 grid steps), then `long_pairs` from `long_truth_pairs`.
 
     colour=True writes the colour tile (RGB PNGs) under the name DEMO_COLOUR_NAME.
     """
@@ -258,7 +287,8 @@ def write_demo(out: str | Path, *, size: int = 64, pairs: int = 90, seed: int = 
     grid = demo_grid()
     name = DEMO_COLOUR_NAME if colour else DEMO_NAME
     scene_dir = save_scene(out / "scene", name, DEMO_SPACE, render_many(grid, size, colour=colour), grid)
-    truth_dir = write_truth(out / "truth", truth_pairs(pairs, seed=seed), size=size, colour=colour)
+    chosen = truth_pairs(pairs, seed=seed) + long_truth_pairs(long_pairs, seed=seed)
+    truth_dir = write_truth(out / "truth", chosen, size=size, colour=colour)
     return scene_dir, truth_dir
 
 

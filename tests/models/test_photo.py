@@ -7,8 +7,9 @@ from PIL import Image
 from skimage import data
 
 from geotween.models.evaluate import load_truth
-from geotween.models.photo import (PHOTO_SPACE, TIGHTEST, WIDEST, crop_resample, photo_grid, photo_pairs, view,
-                          window_box, write_photo_scene)
+from geotween.models.params import span_bucket
+from geotween.models.photo import (PHOTO_SPACE, TIGHTEST, WIDEST, crop_resample, photo_grid, photo_long_pairs,
+                                   photo_pairs, view, window_box, write_photo_scene)
 from geotween.models.scene import load_scene
 
 STEP = 1.0 / 11.0  # 12 grid values over [0, 1]
@@ -24,7 +25,7 @@ def coffee():
 @pytest.fixture(scope="module")
 def written(coffee, tmp_path_factory):
     out = tmp_path_factory.mktemp("photo")
-    scene_dir, truth_dir = write_photo_scene(coffee, out, size=32, pairs=12, seed=0)
+    scene_dir, truth_dir = write_photo_scene(coffee, out, size=32, pairs=12, long_pairs=4, seed=0)
     return scene_dir, truth_dir
 
 
@@ -103,6 +104,20 @@ def test_pairs_are_2_to_6_grid_steps_apart_along_an_axis_or_a_diagonal():
     assert kinds >= {(0, 1), (1, 0), (-1, 0)}
 
 
+def test_long_pairs_are_9_to_11_grid_steps_apart_and_all_in_the_long_span_bucket():
+    pairs = photo_long_pairs(24, seed=0)
+    assert len({(tuple(p["start"]), tuple(p["end"])) for p in pairs}) == 24
+    assert {p["direction"] for p in pairs} == {"pan", "zoom", "rising", "falling"}
+    for p in pairs:
+        moved = np.round((p["end"] - p["start"]) / STEP).astype(int)
+        assert set(np.abs(moved)) - {0} == {p["steps"]} and 9 <= p["steps"] <= 11
+        # reach = steps / 11 of the whole range: 9 / 11 = 0.82 is past the medium bucket's 0.75
+        assert float(PHOTO_SPACE.reach(p["start"], p["end"])) == pytest.approx(p["steps"] / 11)
+        assert span_bucket(float(PHOTO_SPACE.reach(p["start"], p["end"]))) == "long"
+    # 8 steps (8 / 11 = 0.73) would be medium: the floor is the first step count past it
+    assert span_bucket(8 / 11) == "medium" and span_bucket(9 / 11) == "long"
+
+
 def test_written_scene_loads_as_144_rgb_views(written, coffee):
     scene_dir, _ = written
     scene = load_scene(scene_dir, resolution=32)
@@ -117,7 +132,8 @@ def test_truth_frames_on_disk_are_views_at_the_lerped_settings(written, coffee):
     _, truth_dir = written
     doc = json.loads((truth_dir / "truth.json").read_text())
     assert doc["format"] == "geotween-truth/1" and doc["space"] == PHOTO_SPACE.to_list()
-    assert len(doc["pairs"]) == 12
+    assert len(doc["pairs"]) == 16  # 12 short, then 4 long
+    assert [p["steps"] >= 9 for p in doc["pairs"]] == [False] * 12 + [True] * 4
     for pair in doc["pairs"]:
         a, b = (PHOTO_SPACE.vector(pair[k]["params"]) for k in ("start", "end"))
         assert pair["steps"] == int(round(np.abs(b - a).max() / STEP))
@@ -131,5 +147,5 @@ def test_truth_frames_on_disk_are_views_at_the_lerped_settings(written, coffee):
                 disk = np.asarray(img, dtype=np.float32) / 255.0
             assert np.abs(disk - view(coffee, p[0], p[1], 32)).max() <= 0.5 / 255
     pairs = load_truth(truth_dir, 32, 3)
-    assert len(pairs) == 12 and pairs[0]["truth"].shape == (5, 32, 32, 3)
+    assert len(pairs) == 16 and pairs[0]["truth"].shape == (5, 32, 32, 3)
     assert pairs[0]["start_image"].shape == (32, 32, 3)

@@ -2,9 +2,9 @@
 import numpy as np
 import pytest
 
-from geotween.models.params import Parameter, ParamSpace
-from geotween.models.render import (DEMO_SPACE, Tile, albedo_map, demo_grid, grid_pairs, heightfield, render,
-                           render_many, shadow_mask, truth_pairs)
+from geotween.models.params import Parameter, ParamSpace, span_bucket
+from geotween.models.render import (DEMO_SPACE, Tile, albedo_map, demo_grid, grid_pairs, heightfield,
+                                    long_truth_pairs, render, render_many, shadow_mask, truth_pairs, write_demo)
 
 
 @pytest.mark.parametrize("azimuth, elevation", [(0, 20), (75, 35), (200, 50), (310, 70)])
@@ -82,6 +82,46 @@ def test_demo_truth_pairs_are_unchanged_for_seed_0():
     for i, direction, steps, start, end in pinned:
         assert (pairs[i]["direction"], pairs[i]["steps"]) == (direction, steps)
         assert tuple(pairs[i]["start"]) == start and tuple(pairs[i]["end"]) == end
+
+
+def test_long_pairs_run_7_to_11_azimuth_steps_on_the_short_arc_or_the_whole_elevation_range():
+    pairs = long_truth_pairs(40, seed=0)
+    along = [p for p in pairs if p["direction"] == "azimuth"]
+    across = [p for p in pairs if p["direction"] == "elevation"]
+    assert (len(along), len(across)) == (30, 10) and pairs == along + across
+    assert len({(tuple(p["start"]), tuple(p["end"])) for p in pairs}) == 40
+    for p in along:
+        assert 7 <= p["steps"] <= 11
+        d = DEMO_SPACE.delta(p["start"], p["end"])
+        # the short arc is the way the pair was walked: 105-165 deg, never the ambiguous 180
+        assert abs(d[0]) == pytest.approx(15.0 * p["steps"]) and d[1] == 0.0
+        assert p["start"][1] == p["end"][1]
+    assert {p["steps"] for p in along} == {7, 8, 9, 10, 11}
+    assert {span_bucket(float(DEMO_SPACE.reach(p["start"], p["end"]))) for p in along} == {"medium", "long"}
+    for p in across:
+        assert p["steps"] == 5 and (p["start"][1], p["end"][1]) == (20.0, 70.0)
+        assert p["start"][0] == p["end"][0]
+        assert float(DEMO_SPACE.reach(p["start"], p["end"])) == pytest.approx(1.0)
+    again = long_truth_pairs(40, seed=0)
+    assert all(np.array_equal(a["start"], b["start"]) and np.array_equal(a["end"], b["end"])
+               for a, b in zip(pairs, again))
+    assert long_truth_pairs(0) == []
+    with pytest.raises(ValueError, match="full-range"):
+        long_truth_pairs(100)  # 25 full-range pairs; the grid has 24 azimuths
+
+
+def test_write_demo_keeps_the_short_pairs_and_appends_the_long_ones(tmp_path):
+    import json
+
+    _, truth = write_demo(tmp_path, size=8, pairs=5, long_pairs=4, seed=0)
+    doc = json.loads((truth / "truth.json").read_text())
+    short, long = truth_pairs(5, seed=0), long_truth_pairs(4, seed=0)
+    assert len(doc["pairs"]) == 9
+    for entry, want in zip(doc["pairs"], short + long):
+        assert (entry["direction"], entry["steps"]) == (want["direction"], want["steps"])
+        got = [DEMO_SPACE.vector(entry[k]["params"]) for k in ("start", "end")]
+        assert np.array_equal(got[0], want["start"]) and np.array_equal(got[1], want["end"])
+    assert [e["direction"] for e in doc["pairs"][5:]] == ["azimuth"] * 3 + ["elevation"]
 
 
 def test_grid_pairs_keep_non_periodic_ends_on_the_grid_and_refuse_too_many():
