@@ -114,6 +114,7 @@ class Answer(FrameCounts):
     codes: np.ndarray          # (frames, d) codes of the frames
     path_nodes: np.ndarray     # bank indices the geodesic passed through (empty for straight)
     ends: np.ndarray | None = None  # (2, d) codes of the start and the end
+    tau: float | None = None   # the SSIM threshold the frames' confidence speaks about (None: no confidence)
 
 
 class Engine:
@@ -326,7 +327,7 @@ class Engine:
         intended = self.space.lerp(ps, pe, t)
         return Answer(route=route, frames=self.frames_at(codes, t, intended, min_confidence, refine),
                       start_params=self.space.named(ps), end_params=self.space.named(pe),
-                      codes=codes, path_nodes=way.nodes, ends=np.stack([zs, ze]))
+                      codes=codes, path_nodes=way.nodes, ends=np.stack([zs, ze]), tau=self.tau)
 
     def fill(self, targets: Sequence[Mapping[str, float]], min_confidence: float = 0.5,
              refine: bool = True) -> list[Frame]:

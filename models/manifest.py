@@ -361,14 +361,34 @@ class Manifest:
     def channels(self) -> int:
         return self.model_config.channels
 
+    @property
+    def tau(self) -> float | None:
+        """The SSIM threshold the confidence speaks about; None for a model without confidence."""
+        return None if self.confidence is None else self.confidence.tau
+
     def calibration_summary(self) -> dict:
-        """{"fitted", "tau", "method", "signals", "ece", "auroc", "status"}: the confidence and how
-        it was fitted, as the describe answer shows them."""
+        """{"fitted", "kind", "tau", "method", "signals", "ece", "auroc", "status", "ssim_quantiles",
+        "warning"}: the confidence and how it was fitted, as the describe answer shows them. kind:
+        "fitted" (a curve), "bound" (one conservative rate for every frame) or "none" (no
+        confidence: every frame is rejected); warning: plain words when frames will be rejected
+        whatever they look like, else None."""
         conf, report = self.confidence, self.metrics.calibration or Calibration(status=None)
-        return {"fitted": conf is not None, "tau": report.tau if conf is None else conf.tau,
-                "method": report.method if conf is None else conf.method,
-                "signals": [] if conf is None else list(conf.signals), "ece": report.ece, "auroc": report.auroc,
-                "status": report.status or ("fitted" if conf is not None else "not calibrated")}
+        kind = "none" if conf is None else ("bound" if conf.method == "bound" else "fitted")
+        tau = report.tau if conf is None else conf.tau
+        warning = None
+        if kind == "none":
+            warning = ("this model has no confidence (it was trained without calibration): every frame it serves "
+                       "is rejected; train it again with calibration")
+        elif kind == "bound":
+            rate = float(conf.model.get("rate", 0.0))
+            reach = f" (held-out SSIM p90 {report.ssim_quantiles['p90']:.3f})" if "p90" in report.ssim_quantiles else ""
+            warning = (f"too few held-out frames reached SSIM {tau:g}{reach} to fit a confidence curve: every frame "
+                       f"gets {rate:.3f}, so frames are rejected at min_confidence above it; train with a lower "
+                       f"--tau to get a confidence you can use")
+        return {"fitted": kind == "fitted", "kind": kind, "tau": tau, "method": report.method if conf is None
+                else conf.method, "signals": [] if conf is None else list(conf.signals), "ece": report.ece,
+                "auroc": report.auroc, "status": report.status or ("fitted" if conf is not None else "not calibrated"),
+                "ssim_quantiles": dict(report.ssim_quantiles), "warning": warning}
 
     def to_dict(self) -> dict:
         """The JSON object manifest.json holds."""

@@ -58,6 +58,7 @@ class Answer(FrameCounts):
     end_params: dict[str, float] = field(default_factory=dict)
     start_code: list[float] | None = None
     end_code: list[float] | None = None
+    tau: float | None = None                       # the SSIM threshold the confidences speak about
 
 
 def _floats(values) -> list[float]:
@@ -80,7 +81,7 @@ def between_answer(ans, model: str, version: int) -> Answer:
     return Answer(kind="between", model=model, version=version, frames=frames, route=ans.route,
                   start_params=dict(ans.start_params), end_params=dict(ans.end_params),
                   start_code=None if ends is None else _floats(ends[0]),
-                  end_code=None if ends is None else _floats(ends[1]))
+                  end_code=None if ends is None else _floats(ends[1]), tau=getattr(ans, "tau", None))
 
 
 def fill_frames(frames: Sequence, targets: Sequence[dict], *, offset: int = 0) -> list[EncodedFrame]:
@@ -89,14 +90,14 @@ def fill_frames(frames: Sequence, targets: Sequence[dict], *, offset: int = 0) -
             for k, f in enumerate(frames)]
 
 
-def fill_answer(frames: list[EncodedFrame], model: str, version: int) -> Answer:
-    return Answer(kind="fill", model=model, version=version, frames=frames)
+def fill_answer(frames: list[EncodedFrame], model: str, version: int, tau: float | None = None) -> Answer:
+    return Answer(kind="fill", model=model, version=version, frames=frames, tau=tau)
 
 
 def from_wire(body: FillOut) -> Answer:
     """A fill's JSON answer (as the client parses it) back into an Answer, its PNGs byte for byte."""
     return fill_answer([EncodedFrame(f.model_dump(exclude={"image"}), f.png()) for f in body.frames], body.model,
-                       body.version)
+                       body.version, body.tau)
 
 
 def to_wire(answer: Answer, files: Sequence[str | None] | None = None, *, latent_map: str | None = None
@@ -110,8 +111,8 @@ def to_wire(answer: Answer, files: Sequence[str | None] | None = None, *, latent
         if len(files) != len(answer.frames):
             raise ValueError(f"files: {len(files)} names for {len(answer.frames)} frames")
         frames = [{**f.fields, "file": name} for f, name in zip(answer.frames, files)]
-    body = {"model": answer.model, "version": answer.version, "frames": frames, "accepted": answer.accepted,
-            "rejected": answer.rejected}
+    body = {"model": answer.model, "version": answer.version, "tau": answer.tau, "frames": frames,
+            "accepted": answer.accepted, "rejected": answer.rejected}
     if answer.kind == "between":
         body.update(route=answer.route, start_params=answer.start_params, end_params=answer.end_params,
                     start_code=answer.start_code, end_code=answer.end_code)

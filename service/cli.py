@@ -40,10 +40,19 @@ def cmd_train(args) -> int:
 
     entry = train_into_registry(Path(args.scene), args.name, _registry(args), resolution=args.resolution,
                                 latent_dim=args.latent_dim, steps=args.steps, budget=args.budget_seconds,
-                                seed=args.seed)
+                                seed=args.seed, tau=args.tau)
     print(f"registered {entry.name}@{entry.version}")
     _print_json(entry.metrics)
+    _warn_calibration(entry)
     return EXIT_OK
+
+
+def _warn_calibration(entry) -> None:
+    from .training import calibration_warning
+
+    warning = calibration_warning(entry)
+    if warning:
+        print(f"geotween: warning: {entry.name}@{entry.version}: {warning}", file=sys.stderr)
 
 
 def refine_line(manifest) -> str:
@@ -79,7 +88,22 @@ def cmd_models(args) -> int:
               f"holdout PSNR {fit.get('holdout_psnr', float('nan')):.2f} dB  "
               f"SSIM {fit.get('holdout_ssim', float('nan')):.4f}")
         print(f"  {refine_line(manifest)}")
+        print(f"  {confidence_line(manifest)}")
     return EXIT_OK
+
+
+def confidence_line(manifest) -> str:
+    """What the model's confidence speaks about and how far it can be trusted, from its manifest."""
+    c = manifest.calibration_summary()
+    reach = c["ssim_quantiles"]
+    reach_text = (f"; held-out geodesic SSIM p10 {reach['p10']:.3f}, p50 {reach['p50']:.3f}, p90 {reach['p90']:.3f}"
+                  if reach else "")
+    if c["kind"] == "none":
+        return f"confidence: none -- {c['warning']}"
+    head = f"confidence: P(SSIM >= {c['tau']:g}), {c['method']}"
+    if c["kind"] == "fitted" and c["ece"] is not None:
+        head += f", ECE {c['ece']:.3f}, AUROC {c['auroc']:.3f}"
+    return head + reach_text + (f" -- warning: {c['warning']}" if c["warning"] else "")
 
 
 def parse_end(text: str, engine) -> "Endpoint":
@@ -239,6 +263,10 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--steps", type=int, default=None)
     s.add_argument("--budget-seconds", type=float, default=None, help="wall-clock cap on training")
     s.add_argument("--seed", type=int, default=0)
+    s.add_argument("--tau", type=float, default=0.90,
+                   help="the SSIM against the true view a frame must reach to count as faithful; the confidence "
+                        "is the probability of that (default 0.90; lower it for scenes the model cannot "
+                        "reproduce that closely)")
     s.set_defaults(func=cmd_train)
 
     s = sub.add_parser("between", help="frames between two images or settings (synthesized, not captured)")

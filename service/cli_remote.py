@@ -108,7 +108,7 @@ def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable
         frames += fill_frames(engine.fill(part, min_confidence=args.min_confidence, refine=not args.no_refine),
                               part, offset=lo)
         progress(len(frames), len(targets))
-    return fill_answer(frames, entry.name, entry.version)
+    return fill_answer(frames, entry.name, entry.version, engine.tau)
 
 
 def _fill_remote(args, targets: Sequence[Mapping[str, float]], progress: Callable[[int, int], None]):
@@ -121,7 +121,7 @@ def _fill_remote(args, targets: Sequence[Mapping[str, float]], progress: Callabl
                                      progress=progress, refine=not args.no_refine))
 
 
-def _write_fill(out: Path, names: Sequence[str], answer):
+def _write_fill(out: Path, names: Sequence[str], answer, *, keep_rejected: bool = False):
     """Accepted frames as PNG, report.json (the ZIP answer's manifest, a FillManifestOut) and report.csv;
     returns the manifest."""
     from .answers import frame_file, manifest_json, to_wire
@@ -129,7 +129,7 @@ def _write_fill(out: Path, names: Sequence[str], answer):
     out.mkdir(parents=True, exist_ok=True)
     files = []
     for f in answer.frames:
-        file = frame_file("fill", f.fields["index"]) if f.accepted else None
+        file = frame_file("fill", f.fields["index"]) if f.accepted or keep_rejected else None
         if file:
             (out / file).write_bytes(f.png)
         files.append(file)
@@ -163,7 +163,7 @@ def cmd_fill(args) -> int:
         print(f"geotween: {args.url}: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT if exc.status is not None and 400 <= exc.status < 500 else EXIT_SERVICE
     bar.close()
-    report = _write_fill(Path(args.out), names, answer)
+    report = _write_fill(Path(args.out), names, answer, keep_rejected=args.keep_rejected)
     print(f"{report.accepted} of {len(report.frames)} frames accepted, written to {args.out} "
           f"(report.csv, report.json); {NOTICE}")
     return EXIT_OK
@@ -217,7 +217,8 @@ def add_commands(subparsers) -> None:
     s.add_argument("targets", help="CSV file; header = parameter names, one target per row")
     s.add_argument("--out", required=True, help="folder for the PNG frames, report.csv and report.json")
     s.add_argument("--url", default=None, help="use a running service instead of the local registry")
-    s.add_argument("--min-confidence", type=float, default=0.5, help="frames below it are not written")
+    s.add_argument("--min-confidence", type=float, default=0.5, help="frames below it are rejected")
+    s.add_argument("--keep-rejected", action="store_true", help="write rejected frames too (marked in the report)")
     s.add_argument("--version", type=int, default=None, help="model version (default: the latest)")
     s.add_argument("--no-refine", action="store_true", help=NO_REFINE_HELP)
     s.set_defaults(func=cmd_fill)

@@ -18,7 +18,9 @@ DETAIL = ("share of the frame's pixels, 0 to 1, carried over from real training 
           "where they agree with the decoded frame. The frame is still synthesized, not captured. null when the "
           "model does not refine (chosen per model at training time)")
 CONFIDENCE = ("calibrated probability that SSIM vs the true view >= tau; null when the model has no "
-              "calibration (every frame is then accepted)")
+              "confidence, and such a frame is never accepted")
+TAU = ("the SSIM against the true view that the frames' confidence speaks about (chosen per model at training, "
+       "train --tau); null: the model has no confidence and rejects every frame")
 FILE_PATTERN = r"^(frame|target)_[0-9]{4,}\.png$"  # between frames, fill frames; 1-based index, 4 digits at least
 FILE = ("name of the frame's PNG beside the manifest: frame_0001.png for between frames, target_0001.png for "
         "fill frames (the 1-based index, four digits at least); null when the frame was not written (the "
@@ -136,6 +138,7 @@ class FrameFileOut(_BetweenFrame):
 class _BetweenHead(_Out):
     model: str
     version: int = Field(ge=1)
+    tau: float | None = Field(None, gt=0.0, lt=1.0, description=TAU)
     route: Literal["geodesic", "straight"]
     frames: list  # each answer names its frame model
     accepted: int = Field(ge=0)
@@ -196,6 +199,7 @@ class FillFrameFileOut(_FillFrame):
 class _FillHead(_Out):
     model: str
     version: int = Field(ge=1)
+    tau: float | None = Field(None, gt=0.0, lt=1.0, description=TAU)
     frames: list  # each answer names its frame model
     accepted: int = Field(ge=0)
     rejected: int = Field(ge=0)
@@ -275,6 +279,8 @@ class TrainingRequest(_Request):
     budget_seconds: float | None = Field(None, gt=0, description="wall-clock cap on training, seconds")
     seed: int = Field(0, ge=0)
     resolution: Literal[16, 32, 64, 128, 256] = Field(64, description="pixels per side")
+    tau: float = Field(0.90, gt=0.0, lt=1.0, description="the SSIM against the true view the model's confidence "
+                                                        "will speak about (a frame is faithful at or above it)")
 
     model_config = ConfigDict(json_schema_extra={"examples": [
         {"scene": "/data/scenes/relief-tile", "name": "relief-tile", "budget_seconds": 600, "resolution": 64}]})
@@ -286,6 +292,8 @@ class TrainingOut(_Out):
     created: str
     hash: str
     metrics: dict
+    warning: str | None = Field(None, description="plain words when the trained model's frames will be rejected "
+                                                  "whatever they look like (too few held-out frames reached tau)")
 
 
 # -- models -------------------------------------------------------------------------------------
@@ -316,13 +324,21 @@ class ParameterOut(_Out):
 
 
 class CalibrationOut(_Out):
-    fitted: bool = Field(description="false: frames carry confidence null and are all accepted")
+    fitted: bool = Field(description="true when a confidence curve was fitted on held-out frames")
+    kind: Literal["fitted", "bound", "none"] | None = Field(
+        None, description="'fitted': a calibrated curve; 'bound': too few held-out frames of one kind to fit one, so "
+                    "every frame gets one conservative rate (0 when none reached tau); 'none': no confidence, "
+                    "every frame is rejected (null only from servers older than this field)")
     tau: float | None = Field(description="SSIM threshold the confidence refers to")
     method: str | None = Field(description="'platt' or 'isotonic'")
     signals: list[str]
     ece: float | None = Field(description="expected calibration error (15 bins) on held-out frames")
     auroc: float | None
     status: str | None
+    ssim_quantiles: dict[str, float] = Field(default_factory=dict, description="p10, p50, p90 of the held-out geodesic frames' SSIM "
+                                                         "against their truth: which tau this model can reach")
+    warning: str | None = Field(None, description="plain words when this model's frames are rejected whatever they "
+                                            "look like (no confidence, or one below most min_confidence values)")
 
 
 class ScoreOut(_Out):

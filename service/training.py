@@ -6,6 +6,8 @@ import sys
 from pathlib import Path
 from typing import Callable
 
+from ..models.bundle import read_manifest
+from ..models.calibrate import DEFAULT_TAU
 from ..models.pipeline import train_bundle
 from ..models.scene import load_scene
 from ..models.train import TrainConfig, default_model_config
@@ -15,14 +17,17 @@ from .registry import ModelVersion, Registry, check_name
 
 def train_into_registry(scene_dir: str | Path, name: str, registry: Registry, *, resolution: int = 64,
                         latent_dim: int | None = None, steps: int | None = None, budget: float | None = None,
-                        seed: int = 0, quiet: bool = False,
+                        seed: int = 0, tau: float = DEFAULT_TAU, quiet: bool = False,
                         on_step: Callable[[int, int], None] | None = None) -> ModelVersion:
     """Load a scene folder, train (resolution in pixels per side, budget in wall-clock seconds),
-    and publish the bundle under `name`; returns the new ModelVersion. The name is checked before
+    and publish the bundle under `name`; returns the new ModelVersion. `tau` is the SSIM against the
+    true view that the model's confidence will speak about. The name and tau are checked before
     minutes of training, not after; progress goes to stderr unless `quiet`."""
     check_name(name)
+    if isinstance(tau, bool) or not isinstance(tau, (int, float)) or not 0.0 < tau < 1.0:
+        raise ValueError(f"tau: {tau!r} is out of range; allowed 0 < tau < 1 (an SSIM threshold)")
     scene = load_scene(Path(scene_dir), resolution=resolution)
-    tcfg = TrainConfig(seed=seed, budget_seconds=budget)
+    tcfg = TrainConfig(seed=seed, budget_seconds=budget, confidence_tau=float(tau))
     if steps is not None:
         tcfg.steps = steps
     mcfg = default_model_config(scene, latent_dim=latent_dim)
@@ -30,3 +35,9 @@ def train_into_registry(scene_dir: str | Path, name: str, registry: Registry, *,
     return registry.publish(name, lambda folder: train_bundle(
         scene, folder, name=name, model_config=mcfg, train_config=tcfg, progress=progress,
         on_step=on_step))
+
+
+def calibration_warning(entry: ModelVersion) -> str | None:
+    """Plain words when the model's frames will be rejected whatever they look like (no confidence,
+    or one conservative rate because too few held-out frames reached tau); None otherwise."""
+    return read_manifest(entry.path).calibration_summary()["warning"]

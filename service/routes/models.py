@@ -182,18 +182,18 @@ async def fill(name: ModelName, body: FillRequest, request: Request, services: S
         raise BadInput(f"targets: {n} targets is over the limit; allowed 1 to max_fill_targets="
                        f"{s.max_fill_targets}", field="targets", code="too_many_targets")
 
-    def checked() -> ModelVersion:  # one hop: the version, then every target against its space
+    def checked() -> tuple[ModelVersion, float | None]:  # one hop: the version, then every target against its space
         entry = services.cache.lookup(name, body.version)
         space = services.cache.space(entry)
         for i, target in enumerate(body.targets):
             _check_params(space, target, f"targets[{i}]")
-        return entry
+        return entry, services.cache.manifest(entry).tau
 
-    entry = await run_in_threadpool(checked)
+    entry, tau = await run_in_threadpool(checked)
     targets, min_conf, refine = body.targets, body.min_confidence, body.refine
     if n <= s.max_fill_sync and not body.as_job:
         frames = await services.pool.run(fill_chunk, services.cache, entry, targets, min_conf, 0, refine)
-        answer = fill_answer(frames, entry.name, entry.version)
+        answer = fill_answer(frames, entry.name, entry.version, tau)
         services.metrics.frames(entry.name, len(frames), answer.rejected)
         note(request, model=entry.name, version=entry.version, frames=len(frames), rejected=answer.rejected)
         return respond(request, answer)
@@ -206,7 +206,7 @@ async def fill(name: ModelName, body: FillRequest, request: Request, services: S
         for lo in range(0, n, chunk):
             frames += ctx.compute(fill_chunk, cache, entry, targets[lo:lo + chunk], min_conf, lo, refine)
             ctx.progress(len(frames))
-        answer = fill_answer(frames, entry.name, entry.version)
+        answer = fill_answer(frames, entry.name, entry.version, tau)
         metrics.frames(entry.name, len(frames), answer.rejected)
         return answer
 

@@ -10,7 +10,7 @@ from ..deps import ApiKeyDep, Services, ServicesDep, note
 from ..errors import BadInput
 from ..registry import check_name
 from ..schemas import JobOut, TrainingRequest
-from ..training import train_into_registry
+from ..training import calibration_warning, train_into_registry
 from .common import errors
 
 router = APIRouter(prefix="/v1", tags=["trainings"])
@@ -54,11 +54,11 @@ def start_training(key: ApiKeyDep, body: TrainingRequest, services: ServicesDep,
 
     def work(ctx) -> dict:
         entry = ctx.compute(train_into_registry, scene, name, registry, resolution=body.resolution,
-                            latent_dim=None, steps=body.steps, budget=budget, seed=body.seed, quiet=True,
+                            latent_dim=None, steps=body.steps, budget=budget, seed=body.seed, tau=body.tau, quiet=True,
                             on_step=ctx.progress, inference=False)
         ctx.job.version = entry.version
         return {"model": entry.name, "version": entry.version, "created": entry.created, "hash": entry.hash,
-                "metrics": entry.metrics}
+                "metrics": entry.metrics, "warning": calibration_warning(entry)}
 
     job = services.jobs.submit("training", work, total=body.steps or 0, model=name)
     note(request, model=name, job=job.id, key=key)

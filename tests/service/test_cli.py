@@ -50,6 +50,31 @@ def test_train_registers_and_models_lists(demo_dir, tmp_path, capsys):
     assert "tile@1" in capsys.readouterr().out
 
 
+def test_a_tau_the_model_cannot_reach_warns_and_every_frame_is_rejected(demo_dir, tmp_path, capsys):
+    reg = str(tmp_path / "reg")
+    assert main(["--registry", reg, "train", str(demo_dir / "scene"), "--name", "tile", "--resolution", "16",
+                 "--steps", "5", "--tau", "0.999"]) == 0
+    err = capsys.readouterr().err
+    assert "warning: tile@1" in err and "reached SSIM 0.999" in err and "--tau" in err
+    assert main(["--registry", reg, "models"]) == 0
+    assert "confidence: P(SSIM >= 0.999), bound" in capsys.readouterr().out
+    out = tmp_path / "frames"
+    code = main(["--registry", reg, "between", "tile", "lamp_azimuth=10,lamp_elevation=30",
+                 "lamp_azimuth=170,lamp_elevation=30", "--frames", "4", "--out", str(out), "--strict"])
+    assert code == 3  # --strict: some frame was rejected (here: all of them)
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["tau"] == 0.999 and manifest["accepted"] == 0 and manifest["rejected"] == 4
+    assert all(f["confidence"] == 0.0 for f in manifest["frames"])
+
+
+def test_tau_out_of_range_is_refused_before_training(demo_dir, tmp_path, capsys):
+    for bad in ("1.0", "0", "-0.5"):
+        assert main(["--registry", str(tmp_path / "r"), "train", str(demo_dir / "scene"), "--name", "t",
+                     "--tau", bad]) == 2
+        assert "tau" in capsys.readouterr().err
+    assert not (tmp_path / "r" / "models").exists() or not any((tmp_path / "r" / "models").iterdir())
+
+
 def test_bad_input_exits_2_with_message(tmp_path, capsys):
     assert main(["--registry", str(tmp_path / "r"), "train", str(tmp_path / "nope"), "--name", "x"]) == 2
     assert "scene.json" in capsys.readouterr().err
@@ -177,8 +202,12 @@ def test_models_says_whether_each_model_refines(detail_registry, capsys):
     root, _, entries = detail_registry
     assert main(["--registry", root, "models"]) == 0
     lines = capsys.readouterr().out.splitlines()
-    said = {lines[i].split("@")[0]: lines[i + 1].strip() for i in range(0, len(lines), 2)}
+    # three lines a model: name@version and figures, its detail transfer, its confidence
+    said = {lines[i].split("@")[0]: lines[i + 1].strip() for i in range(0, len(lines), 3)}
+    confidence = {lines[i].split("@")[0]: lines[i + 2].strip() for i in range(0, len(lines), 3)}
     assert said["bare"] == "detail transfer off (no choice made at training time)"
+    assert confidence["bare"].startswith("confidence: none -- ") and "every frame it serves is rejected" in \
+        confidence["bare"]
     for name, state in (("plain", "off"), ("fine", "on")):
         dec, ref = entries[name]["holdout"]["decoded"], entries[name]["holdout"]["refined"]
         flow = f" (flow {entries[name]['config']['flow']})" if state == "on" else ""

@@ -213,8 +213,9 @@ def test_fill_command_local_and_through_the_service(server, tmp_path, capsys):
     targets = tmp_path / "targets.csv"
     targets.write_text("lamp_azimuth,lamp_elevation\n0,20\n90,45\n\n359,70\n")
     local, remote = tmp_path / "local", tmp_path / "remote"
-    assert main(["--registry", str(server["root"]), "fill", "tile", str(targets), "--out", str(local)]) == 0
-    assert main(["fill", "tile", str(targets), "--out", str(remote), "--url", server["url"]]) == 0
+    assert main(["--registry", str(server["root"]), "fill", "tile", str(targets), "--out", str(local),
+                 "--keep-rejected"]) == 0
+    assert main(["fill", "tile", str(targets), "--out", str(remote), "--url", server["url"], "--keep-rejected"]) == 0
     err = capsys.readouterr().err
     assert "3/3" in err  # the progress bar, on stderr
     reports = [json.loads((d / "report.json").read_text()) for d in (local, remote)]
@@ -222,9 +223,15 @@ def test_fill_command_local_and_through_the_service(server, tmp_path, capsys):
         assert len(report["frames"]) == 3 and report["synthesized"] is True
         assert [f["target"] for f in report["frames"]] == [P(0, 20), P(90, 45), P(359, 70)]
     for a, b in zip(*(r["frames"] for r in reports)):
-        assert a["file"] == b["file"] == f"target_{a['index']:04d}.png"  # no calibration: all accepted
+        # no calibration: no confidence, so every frame is rejected (never let through unjudged),
+        # and --keep-rejected writes them all the same
+        assert a["confidence"] is None and not a["accepted"] and not b["accepted"]
+        assert a["file"] == b["file"] == f"target_{a['index']:04d}.png"
         img_a, img_b = (np.asarray(Image.open(d / a["file"]), dtype=int) for d in (local, remote))
         assert np.abs(img_a - img_b).max() <= 1
+    strict = tmp_path / "strict"  # without --keep-rejected, rejected frames are not written
+    assert main(["--registry", str(server["root"]), "fill", "tile", str(targets), "--out", str(strict)]) == 0
+    assert not list(strict.glob("*.png")) and (strict / "report.json").is_file()
     rows = (local / "report.csv").read_text().splitlines()
     assert rows[0].split(",")[:3] == ["index", "lamp_azimuth", "lamp_elevation"] and len(rows) == 4
 
