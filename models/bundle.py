@@ -57,14 +57,6 @@ class Bundle:
     def scale(self) -> np.ndarray:
         return np.asarray(self.manifest.scale, dtype=np.float64)
 
-    @property
-    def resolution(self) -> int:
-        return self.manifest.resolution
-
-    @property
-    def channels(self) -> int:
-        return self.manifest.channels
-
     def images(self, which: str = "images") -> np.ndarray:
         """Bank (or held-out) images as float32 (N, H, W, C) in [0, 1]."""
         return self.pixels(which).astype(np.float32) / 255.0

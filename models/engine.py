@@ -209,11 +209,12 @@ class Engine:
 
     @property
     def resolution(self) -> int:
-        return self.bundle.resolution
+        """Pixels per side of the model's images."""
+        return self.manifest.resolution
 
     @property
     def channels(self) -> int:
-        return self.bundle.channels
+        return self.manifest.channels
 
     # -- ends ---------------------------------------------------------------------------------
     @torch.inference_mode()

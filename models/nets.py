@@ -7,14 +7,16 @@ from __future__ import annotations
 
 import copy
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 
 import torch
 from torch import nn
 
+from .config import Stored
+
 
 @dataclass
-class ModelConfig:
+class ModelConfig(Stored):
     resolution: int = 64          # pixels per side; a power of two >= 16
     channels: int = 1             # 1 grayscale, 3 RGB
     latent_dim: int = 3           # d
@@ -41,13 +43,6 @@ class ModelConfig:
         levels = int(math.log2(self.resolution / self.bottom))
         return [min(self.base_width * 2 ** i, self.max_width) for i in range(levels)]
 
-    def to_dict(self) -> dict:
-        return asdict(self)
-
-    @classmethod
-    def from_dict(cls, d: dict) -> "ModelConfig":
-        names = cls.__dataclass_fields__
-        return cls(**{k: v for k, v in d.items() if k in names})
 
 
 def _mlp(n_in: int, hidden: int, n_out: int) -> nn.Sequential:

@@ -10,13 +10,14 @@ from __future__ import annotations
 import math
 import sys
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from typing import Callable, TextIO
 
 import numpy as np
 import torch
 
 from . import losses
+from .config import Stored
 from .metrics import psnr_batch, ssim_batch
 from .nets import Autoencoder, ModelConfig
 from .params import ParamSpace
@@ -25,7 +26,7 @@ from .triplets import Triplets, mine_triplets
 
 
 @dataclass
-class TrainConfig:
+class TrainConfig(Stored):
     steps: int = 2400
     batch_triplets: int = 8
     extra_images: int = 8          # random images added to every batch beside the triplets'
@@ -43,13 +44,6 @@ class TrainConfig:
     budget_seconds: float | None = None  # wall-clock cap; the schedule is compressed to fit it
     confidence_tau: float = 0.90   # a frame is faithful when its SSIM against the truth is >= tau
 
-    def to_dict(self) -> dict:
-        return asdict(self)
-
-    @classmethod
-    def from_dict(cls, d: dict) -> "TrainConfig":
-        names = cls.__dataclass_fields__
-        return cls(**{k: v for k, v in d.items() if k in names})
 
 
 @dataclass

@@ -128,8 +128,11 @@ def test_an_uncalibrated_bundle_writes_its_sections_as_null(tiny_scene, tmp_path
     assert on_disk["route"] is None and on_disk["refine"] is None and on_disk["confidence"] is None
     manifest = read_manifest(tmp_path)
     assert not manifest.route.chosen and not manifest.refine.chosen and manifest.metrics.calibration is None
-    assert manifest.calibration_summary() == {"fitted": False, "tau": None, "method": None, "signals": [],
-                                              "ece": None, "auroc": None, "status": "not calibrated"}
+    summary = manifest.calibration_summary()
+    warning = summary.pop("warning")
+    assert summary == {"fitted": False, "kind": "none", "tau": None, "method": None, "signals": [], "ece": None,
+                       "auroc": None, "status": "not calibrated", "ssim_quantiles": {}}
+    assert "every frame it serves is rejected" in warning
 
 
 def _set(path: str, value):
