@@ -1,4 +1,4 @@
-"""The viewer page at `/`: static HTML, CSS and plain JavaScript shipped in `service/static`.
+"""The viewer page at `/`: static HTML, CSS and plain JavaScript modules shipped in `service/static`.
 
 No build step and nothing fetched from elsewhere: the page talks only to this service's /v1
 endpoints, and its Content-Security-Policy says so (scripts, styles and requests from this
@@ -17,7 +17,11 @@ from ..errors import NotFound
 router = APIRouter(include_in_schema=False)
 
 PAGE = "index.html"
-ASSETS = {"viewer.css": "text/css; charset=utf-8", "viewer.js": "text/javascript; charset=utf-8"}
+# viewer.js is an ES module that imports the other three (core: state, requests and helpers;
+# model: the model panel; map: the latent map and its tooltips)
+_JS = "text/javascript; charset=utf-8"
+ASSETS = {"viewer.css": "text/css; charset=utf-8", "viewer.js": _JS, "viewer-core.js": _JS, "viewer-model.js": _JS,
+          "viewer-map.js": _JS}
 POLICY = ("default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self' data: blob:; "
           "connect-src 'self'; base-uri 'none'; form-action 'none'; frame-ancestors 'none'")
 HEADERS = {"Content-Security-Policy": POLICY, "X-Content-Type-Options": "nosniff", "Cache-Control": "no-cache"}

@@ -23,6 +23,7 @@ from test_live import dockerfile_cmd, free_port, local_argv, wait_until_alive
 
 ROOT = Path(__file__).resolve().parents[2]
 STATIC = ROOT / "service" / "static"
+SCRIPTS = ("viewer.js", "viewer-core.js", "viewer-model.js", "viewer-map.js")  # viewer.js imports the rest
 CHROMIUM = Path("/usr/bin/chromium")
 BROWSER_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
@@ -42,7 +43,7 @@ def test_the_page_and_its_files_are_served(client):
     policy = page.headers["content-security-policy"]
     assert "script-src 'self'" in policy and "connect-src 'self'" in policy and "default-src 'none'" in policy
     assert "synthesized, not captured" in page.text.lower()
-    for name, kind in (("viewer.js", "text/javascript"), ("viewer.css", "text/css")):
+    for name, kind in [(n, "text/javascript") for n in SCRIPTS] + [("viewer.css", "text/css")]:
         r = client.get(f"/viewer/{name}")
         assert r.status_code == 200 and r.headers["content-type"].startswith(kind)
         assert r.content == (STATIC / name).read_bytes()
@@ -54,7 +55,7 @@ def test_the_page_and_its_files_are_served(client):
 
 def test_the_page_fetches_nothing_from_elsewhere():
     text = {p.name: p.read_text() for p in STATIC.iterdir()}
-    assert set(text) == {"index.html", "viewer.css", "viewer.js"}
+    assert set(text) == {"index.html", "viewer.css", *SCRIPTS}
     for name, body in text.items():
         # the one absolute URL allowed is the SVG namespace name, which is an identifier, not a fetch
         urls = set(re.findall(r"(?:https?:)?//[A-Za-z0-9.-]+\.[a-z]{2,}[^\s\"')]*", body))
@@ -62,11 +63,14 @@ def test_the_page_fetches_nothing_from_elsewhere():
         assert "@import" not in body and "import(" not in body
     for ref in re.findall(r'(?:src|href)="([^"]+)"', text["index.html"]):
         assert not ref.startswith(("/", "http")), ref  # relative: works behind a path prefix too
+    # the modules import one another by relative name only, and every one they name is shipped
+    imported = {m for n in SCRIPTS for m in re.findall(r'^import [^;]+ from "([^"]+)";', text[n], re.M)}
+    assert imported == {"./" + n for n in SCRIPTS if n != "viewer.js"}
 
 
 def test_the_page_uses_buttons_and_labels():
     html = (STATIC / "index.html").read_text()
-    js = (STATIC / "viewer.js").read_text()
+    js = "".join((STATIC / n).read_text() for n in SCRIPTS)
     ids = set(re.findall(r'<(?:input|select)[^>]*\bid="([^"]+)"', html))
     labelled = set(re.findall(r'<label[^>]*\bfor="([^"]+)"', html)) | set(re.findall(r'aria-label[^>]*id="([^"]+)"', html))
     assert ids - labelled == set(), "every control has a label"
@@ -179,6 +183,40 @@ def _shown(conf: float) -> str:
     return f"confidence {math.floor(conf * 100 + 1e-9) / 100:.2f}"  # the page rounds down
 
 
+def _panel(page) -> dict[str, str]:
+    """The model panel's figures, term -> value."""
+    pairs = page.eval_on_selector_all("#model-info dl.metrics dt",
+                                      "ts => ts.map(t => [t.textContent, t.nextElementSibling.textContent])")
+    return dict(pairs)
+
+
+KINDS = {"fitted": "calibrated (", "bound": "one cautious rate for every frame", "none": "none: every frame is rejected"}
+
+
+def _check_trust(page, cal: dict) -> None:
+    """The model panel says how far the confidence can be trusted, as the describe answer does."""
+    from playwright.sync_api import expect
+
+    shown = _panel(page)
+    assert shown["confidence"].startswith(KINDS[cal["kind"]]), shown
+    if cal["tau"] is None:  # a model trained without calibration may never have had one
+        assert "SSIM threshold (tau)" not in shown
+    else:
+        assert float(shown["SSIM threshold (tau)"]) == pytest.approx(cal["tau"], abs=0.005)
+    quantiles = shown.get("held-out SSIM p10 / p50 / p90")
+    if cal["ssim_quantiles"]:
+        got = [float(v) for v in quantiles.split(" / ")]
+        assert got == pytest.approx([cal["ssim_quantiles"][k] for k in ("p10", "p50", "p90")], abs=0.0006)
+    else:
+        assert quantiles is None
+    alert = page.locator("#model-info [role=alert]")
+    if cal["warning"] is None:
+        expect(alert).to_have_count(0)
+    else:
+        expect(alert).to_have_text("Warning: " + cal["warning"])
+        expect(alert).to_be_visible()
+
+
 def test_the_viewer_in_a_browser(live, browser, tmp_path):
     from playwright.sync_api import expect
 
@@ -196,7 +234,8 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
         expect(page.locator("#status")).to_contain_text("relief-tile version 1 is ready", timeout=WAIT_MS)
         expect(page.locator("#model-info table tbody tr")).to_have_count(2)
         expect(page.locator("#model-info")).to_contain_text("held-out PSNR")
-        expect(page.locator("#model-info")).to_contain_text("calibrated")
+        relief_cal = httpx.get(live["url"] + "/v1/models/relief-tile", timeout=30).json()["calibration"]
+        _check_trust(page, relief_cal)
         expect(page.locator("#model-info")).to_contain_text("detail transfer")
         bank = httpx.get(live["url"] + "/v1/models/relief-tile/map", timeout=30).json()["bank"]
         expect(page.locator("#map .bank-point")).to_have_count(len(bank))
@@ -328,6 +367,30 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
         page.fill("#frames", "500")
         page.click("#go")
         expect(page.locator("#problem")).to_contain_text("max_frames")
+
+        # a model trained without calibration has no confidence: the panel warns that every frame is rejected
+        cal = httpx.get(live["url"] + "/v1/models/tile", timeout=30).json()["calibration"]
+        assert cal["kind"] == "none" and cal["warning"], cal  # else the check below would see no warning
+        page.select_option("#model", "tile")
+        expect(page.locator("#status")).to_have_text(re.compile(r"^tile version 1 is ready"), timeout=WAIT_MS)
+        _check_trust(page, cal)
+        expect(page.locator("#model-info [role=alert]")).to_contain_text("every frame")
+
+        # an older service, whose describe answer has no kind, quantiles or warning, still gets a panel
+        def older(route):
+            body = route.fetch().json()
+            for key in ("kind", "ssim_quantiles", "warning"):
+                body["calibration"].pop(key)
+            route.fulfill(json=body)
+
+        page.route("**/v1/models/relief-tile", older)
+        page.select_option("#model", "relief-tile")
+        expect(page.locator("#status")).to_contain_text("relief-tile version 1 is ready", timeout=WAIT_MS)
+        expect(page.locator("#model-info [role=alert]")).to_have_count(0)
+        shown = _panel(page)
+        assert shown["confidence"] == (f"calibrated ({relief_cal['method']})" if relief_cal["fitted"] else "not calibrated")
+        assert "held-out SSIM p10 / p50 / p90" not in shown
+        assert float(shown["SSIM threshold (tau)"]) == pytest.approx(relief_cal["tau"], abs=0.005)
         assert failures == [] or all("422" in f for f in failures), failures
     finally:
         page.close()
