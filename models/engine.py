@@ -207,14 +207,8 @@ class Engine:
             return self.signal_names, self.confidence
         return self.decoded_signal_names, self.decoded_confidence
 
-    @property
-    def resolution(self) -> int:
-        """Pixels per side of the model's images."""
-        return self.manifest.resolution
-
-    @property
-    def channels(self) -> int:
-        return self.manifest.channels
+    resolution = property(lambda self: self.manifest.resolution, doc="pixels per side of the model's images")
+    channels = property(lambda self: self.manifest.channels, doc="1 (grayscale) or 3 (RGB)")
 
     # -- ends ---------------------------------------------------------------------------------
     @torch.inference_mode()
