@@ -30,10 +30,10 @@ def test_between_serves_the_engines_frames(client, registry):
     assert d["synthesized"] is True and "not captured" in d["notice"]
     assert [f["index"] for f in d["frames"]] == [1, 2, 3, 4, 5]
     assert [f["t"] for f in d["frames"]] == pytest.approx([i / 6 for i in range(1, 6)])  # DESIGN: t = i/(n+1)
-    # uncalibrated model: confidence null and every frame accepted
-    assert all(f["confidence"] is None and f["accepted"] for f in d["frames"])
+    # uncalibrated model: confidence null, so every frame is rejected (never let through unjudged)
+    assert all(f["confidence"] is None and not f["accepted"] for f in d["frames"])
     assert all("detail" in f and f["detail"] is None for f in d["frames"])  # the model does not refine
-    assert (d["accepted"], d["rejected"]) == (5, 0)
+    assert (d["accepted"], d["rejected"]) == (0, 5)
     engine = Engine.load(registry.get("tile").path)
     want = engine.between(Endpoint(params=P(10, 30)), Endpoint(params=P(100, 60)), frames=5, route="straight")
     for got, ref in zip(d["frames"], want.frames):
@@ -77,7 +77,8 @@ def test_between_zip_answer(client):
                                          "manifest.json"]
         for f in manifest["frames"]:
             assert np.asarray(Image.open(io.BytesIO(zf.read(f["file"])))).shape == (16, 16)
-    assert manifest["accepted"] == 4 and manifest["synthesized"] is True
+    # every frame is written, the rejected ones too: the manifest says which (here all: no confidence)
+    assert (manifest["accepted"], manifest["rejected"]) == (0, 4) and manifest["synthesized"] is True
     # JSON stays the default when JSON is preferred
     r = client.post("/v1/models/tile/between", json=between_body(),
                     headers={"Accept": "application/json, application/zip;q=0.5"})

@@ -90,7 +90,7 @@ def test_access_log_is_one_json_line_per_request(client, caplog):
     ok, missing = lines
     assert {"method", "path", "status", "latency_ms", "model", "frames", "rejected", "request_id"} <= set(ok)
     assert (ok["method"], ok["path"], ok["status"], ok["model"], ok["frames"], ok["rejected"], ok["request_id"]) == (
-        "POST", "/v1/models/tile/between", 200, "tile", 2, 0, "abc-123")
+        "POST", "/v1/models/tile/between", 200, "tile", 2, 2, "abc-123")  # no confidence: both rejected
     assert missing["status"] == 404 and len(missing["request_id"]) == 32  # generated: uuid4 hex
 
 
