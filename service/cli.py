@@ -29,8 +29,10 @@ def _print_json(obj) -> None:
 def cmd_render_demo(args) -> int:
     from ..models.render import write_demo
 
-    scene_dir, truth_dir = write_demo(args.out, size=args.size, pairs=args.pairs, seed=args.seed,
-                                      colour=args.colour)
+    if args.pairs < 0 or args.long_pairs < 0:
+        raise UsageError(f"--pairs, --long-pairs: {args.pairs}, {args.long_pairs} not allowed; expected counts >= 0")
+    scene_dir, truth_dir = write_demo(args.out, size=args.size, pairs=args.pairs, long_pairs=args.long_pairs,
+                                      seed=args.seed, colour=args.colour)
     print(f"scene: {scene_dir}\ntruth: {truth_dir}")
     return EXIT_OK
 
@@ -249,7 +251,9 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("render-demo", help="write the demo training scene and its truth set")
     s.add_argument("out")
     s.add_argument("--size", type=int, default=64, help="pixels per side")
-    s.add_argument("--pairs", type=int, default=90, help="truth pairs")
+    s.add_argument("--pairs", type=int, default=90, help="truth pairs 2 to 6 grid steps apart")
+    s.add_argument("--long-pairs", type=int, default=40,
+                   help="long truth pairs: lamp azimuth 105 to 165 deg apart, and the whole elevation range")
     s.add_argument("--seed", type=int, default=0)
     s.add_argument("--colour", action="store_true",
                    help="the colour tile: each feature its own RGB albedo (RGB PNGs)")

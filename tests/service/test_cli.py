@@ -8,7 +8,7 @@ from geotween.service.cli import main
 @pytest.fixture(scope="module")
 def demo_dir(tmp_path_factory):
     out = tmp_path_factory.mktemp("demo")
-    assert main(["render-demo", str(out), "--size", "16", "--pairs", "3"]) == 0
+    assert main(["render-demo", str(out), "--size", "16", "--pairs", "3", "--long-pairs", "4"]) == 0
     return out
 
 
@@ -17,7 +17,10 @@ def test_render_demo_writes_scene_and_truth(demo_dir):
     assert rows[0] == "image,lamp_azimuth,lamp_elevation"
     assert len(rows) == 1 + 144  # azimuth every 15 deg x elevation every 10 deg
     truth = json.loads((demo_dir / "truth" / "truth.json").read_text())
-    assert len(truth["pairs"]) == 3
+    assert len(truth["pairs"]) == 3 + 4
+    assert all(2 <= p["steps"] <= 6 for p in truth["pairs"][:3])  # the short pairs come first
+    az_long = [p for p in truth["pairs"][3:] if p["direction"] == "azimuth"]
+    assert az_long and all(7 <= p["steps"] <= 11 for p in az_long)  # 105 to 165 deg on the 15 deg grid
     for pair in truth["pairs"]:
         assert [f["t"] for f in pair["frames"]] == pytest.approx([i / 6 for i in range(1, 6)])
         for f in pair["frames"] + [pair["start"], pair["end"]]:
@@ -30,7 +33,7 @@ def test_render_demo_colour_writes_rgb_scene_and_truth(tmp_path):
     from geotween.models.evaluate import load_truth
     from geotween.models.scene import load_scene
 
-    assert main(["render-demo", str(tmp_path), "--size", "16", "--pairs", "2", "--colour"]) == 0
+    assert main(["render-demo", str(tmp_path), "--size", "16", "--pairs", "2", "--long-pairs", "0", "--colour"]) == 0
     scene = load_scene(tmp_path / "scene", resolution=16)
     assert scene.name == "relief-tile-colour" and scene.channels == 3 and len(scene) == 144
     pairs = load_truth(tmp_path / "truth", 16, 3)
