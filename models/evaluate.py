@@ -7,6 +7,9 @@ decoded route can beat. Routes are scored as served: when the model refines its 
 detail from real bank images (`models.refine`), the report also carries the decoded geodesic
 frames before refinement ("geodesic_decoded", with the confidence a refine=False request gets when
 the model has one), and refined frames may exceed the ceiling. Ends are the truth set's end images.
+
+Every number is also given per span bucket (`models.params.SPAN_BUCKETS`, by the reach of each
+pair's ends), so that a method which does well on short pairs and badly on long ones shows it.
 """
 from __future__ import annotations
 
@@ -16,10 +19,11 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from .confidence import auroc, ece
 from . import flow as lflow
+from .confidence import auroc, ece
 from .engine import Endpoint, Engine
 from .metrics import psnr_batch, ssim_batch
+from .params import SPAN_BUCKETS, ParamSpace, span_bucket
 from .scene import image_to_array
 
 METHODS = ("dissolve", "flow", "straight", "geodesic", "ceiling")
@@ -49,6 +53,14 @@ def load_truth(truth_dir: str | Path, resolution: int, channels: int) -> list[di
     return pairs
 
 
+def pair_spans(space: ParamSpace, pairs: list[dict]) -> tuple[np.ndarray, list[str]]:
+    """Each truth pair's reach in [0, 1] (`ParamSpace.reach` of its start and end settings) and the
+    name of its SPAN_BUCKETS bucket."""
+    reach = np.array([float(space.reach(space.vector(p["start"]["params"]), space.vector(p["end"]["params"])))
+                      for p in pairs])
+    return reach, [span_bucket(r) for r in reach]
+
+
 def _summary(psnr: np.ndarray, ssim: np.ndarray) -> dict:
     psnr = np.minimum(psnr, 99.0)
     return {"psnr": round(float(psnr.mean()), 3), "ssim": round(float(ssim.mean()), 4),
@@ -58,20 +70,26 @@ def _summary(psnr: np.ndarray, ssim: np.ndarray) -> dict:
 def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0.5,
              sheet: str | Path | None = None, sheet_pairs: int = 6, latent_map: str | Path | None = None) -> dict:
     """Report dict: per method PSNR (dB), SSIM, p10 PSNR; pacing error (spacing units) and
-    confidence ECE / AUROC / accept-reject confusion for the latent routes. `sheet` and
-    `latent_map` are PNG paths: the contact sheet and the bank's map with the geodesic routes of
-    the same first `sheet_pairs` pairs."""
+    confidence ECE / AUROC / accept-reject confusion for the latent routes; "by_span" holds the
+    same per span bucket (see `span_report`) and "longest_pair" the pair of greatest reach.
+    `sheet` and `latent_map` are PNG paths: the contact sheet and the bank's map with the geodesic
+    routes of the same first `sheet_pairs` pairs; beside the map, "<name>_long.png" shows the
+    geodesic route of the longest pair."""
     pairs = load_truth(truth_dir, engine.resolution, engine.channels)
     if not pairs:
         raise ValueError(f"{truth_dir}: the truth set has no pairs")
+    reach, pair_bucket = pair_spans(engine.space, pairs)
+    longest = int(np.argmax(reach))  # the first of equals
+    frame_bucket: list[str] = []
     tau = engine.tau if engine.tau is not None else 0.90
     methods = METHODS + (("geodesic_decoded",) if engine.refine is not None else ())
     got = {m: {"psnr": [], "ssim": []} for m in methods}
     pacing = {"straight": [], "geodesic": []}
     conf = {"straight": ([], []), "geodesic": ([], []), "geodesic_decoded": ([], [])}
-    rows, mapped = [], []
-    for pair in pairs:
+    rows, mapped, long_answer = [], [], None
+    for i, pair in enumerate(pairs):
         truth, t = pair["truth"], pair["t"]
+        frame_bucket += [pair_bucket[i]] * len(t)
         outs = {"dissolve": (1 - t)[:, None, None, None] * pair["start_image"] + t[:, None, None, None] * pair["end_image"],
                 "flow": lflow.tween(pair["start_image"], pair["end_image"], t),
                 "ceiling": engine.decode(engine.encode(truth))}
@@ -86,6 +104,8 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
                 conf[route][0].extend(f.confidence for f in ans.frames)
             if route == "geodesic" and len(mapped) < sheet_pairs:
                 mapped.append(ans)
+            if route == "geodesic" and i == longest:
+                long_answer = ans
             if route == "geodesic" and "geodesic_decoded" in methods:
                 if engine.decoded_confidence is not None:  # the same route, as a refine=False request serves it
                     ends = np.stack([engine.space.vector(ans.start_params), engine.space.vector(ans.end_params)])
@@ -116,6 +136,14 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
             report["methods"][route]["confidence"] = confidence_summary(prob, faithful, min_confidence)
     geo, ceil = report["methods"]["geodesic"], report["methods"]["ceiling"]
     report["geodesic_below_ceiling_db"] = round(ceil["psnr"] - geo["psnr"], 3)
+    scores = {m: (np.concatenate(got[m]["psnr"]), np.concatenate(got[m]["ssim"])) for m in methods}
+    served = {r: (np.asarray(conf[r][0], dtype=float), np.asarray(conf[r][1], dtype=float))
+              for r in conf if len(conf[r][0])}
+    report["by_span"] = span_report(scores, served, np.array(frame_bucket), pair_bucket, min_confidence)
+    report["longest_pair"] = {"index": longest, "reach": round(float(reach[longest]), 4),
+                              "bucket": pair_bucket[longest], "direction": pairs[longest].get("direction"),
+                              "steps": pairs[longest].get("steps"), "start": pairs[longest]["start"]["params"],
+                              "end": pairs[longest]["end"]["params"]}
     if sheet is not None:
         contact_sheet(rows, sheet)
         report["contact_sheet"] = str(sheet)
@@ -124,14 +152,57 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
 
         engine_map_png(engine, mapped, latent_map, title=f"bank codes and the geodesic routes of {len(mapped)} pairs")
         report["latent_map"] = str(latent_map)
+        long_map = long_map_path(latent_map)
+        engine_map_png(engine, [long_answer], long_map,
+                       title=f"bank codes and the geodesic route of the longest pair (reach {reach[longest]:.2f}, "
+                             f"{pair_bucket[longest]})")
+        report["latent_map_long"] = str(long_map)
     return report
 
 
+def long_map_path(latent_map: str | Path) -> Path:
+    """Where the longest pair's map goes beside the latent map: NAME_long.png next to NAME.png."""
+    latent_map = Path(latent_map)
+    return latent_map.with_name(f"{latent_map.stem}_long{latent_map.suffix or '.png'}")
+
+
+def span_report(scores: dict, served: dict, frame_bucket: np.ndarray, pair_bucket: list[str],
+                min_confidence: float) -> dict:
+    """Per SPAN_BUCKETS bucket, in order: {"reach": [low, high], "pairs", "frames", "methods": {method:
+    PSNR/SSIM/p10 summary, plus "confidence" (`confidence_summary`) for the routes served with one}}.
+    `scores` maps a method to per-frame (psnr, ssim); `served` a route to per-frame (confidence,
+    1 where SSIM >= tau); `frame_bucket` names each frame's bucket. A bucket without pairs has
+    pairs 0 and no methods."""
+    out, low = {}, 0.0
+    for name, high in SPAN_BUCKETS:
+        sel = frame_bucket == name
+        entry = {"reach": [low, high], "pairs": pair_bucket.count(name), "frames": int(sel.sum()), "methods": {}}
+        if sel.any():
+            for m, (psnr, ssim) in scores.items():
+                entry["methods"][m] = _summary(psnr[sel], ssim[sel])
+                if m in served:
+                    prob, faithful = served[m]
+                    entry["methods"][m]["confidence"] = confidence_summary(prob[sel], faithful[sel], min_confidence)
+        out[name] = entry
+        low = high
+    return out
+
+
+def _share(part: np.ndarray, whole: np.ndarray) -> float | None:
+    return round(float(part.sum() / whole.sum()), 4) if whole.any() else None
+
+
 def confidence_summary(prob: np.ndarray, faithful: np.ndarray, min_confidence: float) -> dict:
-    """ECE (15 bins), AUROC for telling unfaithful frames, and the accept/reject confusion."""
+    """ECE (15 bins), AUROC for telling unfaithful frames, and the accept/reject confusion: counts,
+    the share of frames accepted, the share of accepted frames below tau (accepted but unfaithful),
+    and the share of frames at or above tau that were rejected (None where the share is of nothing)."""
     accepted = prob >= min_confidence
     bad, good = faithful == 0, faithful == 1
-    return {"ece": round(ece(prob, faithful, 15), 4),
+    return {"frames": int(len(prob)), "accepted": int(accepted.sum()),
+            "accept_rate": _share(accepted, np.ones_like(accepted)),
+            "below_tau_share_of_accepted": _share(accepted & bad, accepted),
+            "reject_rate_above_tau": _share(~accepted & good, good),
+            "ece": round(ece(prob, faithful, 15), 4),
             "auroc": round(float(auroc(prob, faithful)), 4) if bad.any() and good.any() else None,
             "below_tau": int(bad.sum()), "at_or_above_tau": int(good.sum()),
             "rejected_below_tau": int((~accepted & bad).sum()), "accepted_below_tau": int((accepted & bad).sum()),
@@ -168,4 +239,33 @@ def format_table(report: dict) -> str:
         e = f"{c['ece']:.3f}" if c else "-"
         a = f"{c['auroc']:.3f}" if c and c.get("auroc") is not None else "-"
         lines.append(f"{m:<16} {r['psnr']:8.2f} {r['ssim']:7.4f} {r['psnr_p10']:7.2f} {pace:>7} {e:>6} {a:>6}")
+    if "by_span" in report:
+        lines += ["", span_table(report["by_span"])]
+    return "\n".join(lines)
+
+
+def _num(x, fmt: str) -> str:
+    return "-" if x is None else format(x, fmt)
+
+
+def span_table(by_span: dict) -> str:
+    """The per-bucket lines of `format_table`: quality per method, and for the routes with a
+    confidence its ECE, AUROC, share accepted, share of accepted frames below tau and share of
+    frames at or above tau rejected."""
+    bounds = ", ".join(f"{name} {b['reach'][0]:.2f}-{b['reach'][1]:.2f}" for name, b in by_span.items())
+    lines = [f"by span (reach of the pair's ends, share of the farthest apart: {bounds})",
+             f"{'span':<7} {'pairs':>5} {'method':<16} {'PSNR dB':>8} {'SSIM':>7} {'p10 dB':>7} {'ECE':>6} "
+             f"{'AUROC':>6} {'accept':>6} {'bad/acc':>7} {'rej/good':>8}"]
+    for name, b in by_span.items():
+        if not b["methods"]:
+            lines.append(f"{name:<7} {b['pairs']:>5} (no pairs)")
+        for m, r in b["methods"].items():
+            c = r.get("confidence")
+            conf = (f"{_num(c['ece'], '.3f'):>6} {_num(c['auroc'], '.3f'):>6} {_num(c['accept_rate'], '.0%'):>6} "
+                    f"{_num(c['below_tau_share_of_accepted'], '.0%'):>7} {_num(c['reject_rate_above_tau'], '.0%'):>8}"
+                    if c else f"{'-':>6} {'-':>6} {'-':>6} {'-':>7} {'-':>8}")
+            lines.append(f"{name:<7} {b['pairs']:>5} {m:<16} {r['psnr']:8.2f} {r['ssim']:7.4f} {r['psnr_p10']:7.2f} "
+                         + conf)
+    lines.append("accept: share of frames accepted; bad/acc: share of the accepted frames below tau; "
+                 "rej/good: share of the frames at or above tau rejected")
     return "\n".join(lines)
