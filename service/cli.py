@@ -190,7 +190,8 @@ def cmd_eval(args) -> int:
     report.update({"model": entry.name, "version": entry.version})
     (out / "report.json").write_text(json.dumps(report, indent=1))
     print(format_table(report))
-    print(f"report: {out / 'report.json'}  contact sheet: {out / 'contact_sheet.png'}  latent map: {out / LATENT_MAP}")
+    print(f"report: {out / 'report.json'}  contact sheet: {out / 'contact_sheet.png'}  latent map: {out / LATENT_MAP}"
+          f"  longest pair's route: {report['latent_map_long']}")
     return EXIT_OK
 
 
@@ -222,7 +223,8 @@ def cmd_demo(args) -> int:
          "--frames", "8", "--out", str(example), "--version", str(entry.version), "--keep-rejected"])
     args_between.registry = args.registry
     cmd_between(args_between)
-    print(f"report: {out / 'report.json'}, contact sheet: {out / 'contact_sheet.png'}, frames: {example}")
+    print(f"report: {out / 'report.json'}, contact sheet: {out / 'contact_sheet.png'}, latent maps: "
+          f"{out / LATENT_MAP} and {report['latent_map_long']} (the longest pair), frames: {example}")
     print("frames are synthesized by a learned model, not captured")
     return EXIT_OK
 
