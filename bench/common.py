@@ -13,25 +13,29 @@ CACHE = Path(os.environ.get("GEOTWEEN_BENCH_CACHE", ROOT / "bench" / ".cache"))
 SCENES = ("demo", "colour", "photo")  # grey relief tile, its colour variant, the photo window
 
 
-def scene_folders(kind: str = "demo", size: int = 64, pairs: int = 90) -> tuple[Path, Path]:
-    """(scene folder, truth folder) of one scene at `size` px with `pairs` truth pairs, written on
-    first use into GEOTWEEN_BENCH_CACHE (default bench/.cache). "photo" is scikit-image's "coffee"
-    photograph (it ships inside the scikit-image wheel) through the panning, zooming window."""
+def scene_folders(kind: str = "demo", size: int = 64, pairs: int = 90,
+                  long_pairs: int | None = None) -> tuple[Path, Path]:
+    """(scene folder, truth folder) of one scene at `size` px with `pairs` truth pairs and
+    `long_pairs` long ones (None: the scene writer's default), written on first use into
+    GEOTWEEN_BENCH_CACHE (default bench/.cache). "photo" is scikit-image's "coffee" photograph
+    (it ships inside the scikit-image wheel) through the panning, zooming window."""
     from geotween.models.render import write_demo
 
     if kind not in SCENES:
         raise ValueError(f"scene kind {kind!r}: expected one of {SCENES}")
     cache = Path(os.environ.get("GEOTWEEN_BENCH_CACHE", CACHE))
-    out = cache / (f"{kind}-{size}" if pairs == 90 else f"{kind}-{size}-{pairs}")
+    extra = {} if long_pairs is None else {"long_pairs": long_pairs}
+    # the long count is in the name, so a cache written before truth sets had long pairs is not reused
+    out = cache / f"{kind}-{size}-{pairs}-long{'default' if long_pairs is None else long_pairs}"
     if not (out / "truth" / "truth.json").is_file():
         if kind == "photo":
             from skimage.data import coffee
 
             from geotween.models.photo import write_photo_scene
 
-            write_photo_scene(coffee(), out, size=size, pairs=pairs)
+            write_photo_scene(coffee(), out, size=size, pairs=pairs, **extra)
         else:
-            write_demo(out, size=size, pairs=pairs, colour=kind == "colour")
+            write_demo(out, size=size, pairs=pairs, colour=kind == "colour", **extra)
     return out / "scene", out / "truth"
 
 

@@ -6,7 +6,8 @@
 Trains the scene's model (default settings unless told), with calibration, then runs the
 eval report: cross-dissolve, optical-flow warping, straight route, geodesic route (as served,
 refined when the model refines, plus the decoded frames before refinement), the model's ceiling;
-PSNR, SSIM, p10, pacing, confidence ECE / AUROC / confusion; and route and 16-frame answer times.
+PSNR, SSIM, p10, pacing, confidence ECE / AUROC / confusion, all of it overall and per span bucket
+(the truth set's short and long pairs); and route and 16-frame answer times.
 """
 from __future__ import annotations
 
@@ -22,15 +23,15 @@ from common import scene_folders, set_threads
 
 
 def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: float | None = None,
-            out: Path | None = None, pairs: int = 90, scene_kind: str = "demo", latent_dim: int | None = None,
-            w_ssim: float = 0.0) -> dict:
+            out: Path | None = None, pairs: int = 90, long_pairs: int | None = None, scene_kind: str = "demo",
+            latent_dim: int | None = None, w_ssim: float = 0.0) -> dict:
     from geotween.models.engine import Endpoint, Engine
     from geotween.models.evaluate import evaluate
     from geotween.models.pipeline import train_bundle
     from geotween.models.scene import load_scene
     from geotween.models.train import TrainConfig, default_model_config
 
-    scene_dir, truth_dir = scene_folders(scene_kind, resolution, pairs=pairs)
+    scene_dir, truth_dir = scene_folders(scene_kind, resolution, pairs=pairs, long_pairs=long_pairs)
     scene = load_scene(scene_dir, resolution=resolution)
     out = Path(out or tempfile.mkdtemp(prefix="geotween-bench-"))
     mcfg = default_model_config(scene, latent_dim=latent_dim)
@@ -45,10 +46,10 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
     report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png")
     # timings on the demo bank
     rng = np.random.default_rng(0)
-    pairs = rng.integers(0, len(engine.bundle.codes), size=(50, 2))
+    ends = rng.integers(0, len(engine.bundle.codes), size=(50, 2))
     codes, params = engine.bundle.codes, engine.bundle.params
     t = time.perf_counter()
-    for a, b in pairs:
+    for a, b in ends:
         engine.route(codes[a], params[a], codes[b], params[b]).codes_at(np.linspace(0, 1, 18)[1:-1])
     route_ms = (time.perf_counter() - t) / len(ends) * 1e3
     imgs = engine.bundle.images()

@@ -46,6 +46,11 @@ def test_quick_run_measures_every_stage(tmp_path):
     for method in ("dissolve", "flow", "straight", "geodesic", "ceiling"):
         rows = re.findall(rf"^\| {method} \| ([0-9.]+) \| ([0-9.]+) \|", text, flags=re.M)
         assert len(rows) == 4 and all(float(p) > 0 for p, _ in rows), method
+    # each quality table is followed by its span table; the truth sets' long pairs fill the long bucket
+    assert text.count("By span (reach of each pair's ends") == 4
+    for method in ("dissolve", "geodesic", "ceiling"):
+        rows = re.findall(rf"^\| long \| {method} \| ([0-9.]+) \| ([0-9.]+) \|", text, flags=re.M)
+        assert len(rows) == 4 and all(float(p) > 0 for p, _ in rows), method
     # routes agree with scipy's Dijkstra to rounding
     diffs = [float(x) for x in re.findall(r"\| ([0-9.]+e[+-][0-9]+) \(\d+ pairs\) \|", text)]
     assert len(diffs) == 3 and max(diffs) < 1e-9
