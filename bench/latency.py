@@ -26,7 +26,6 @@ from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
-
 from common import ROOT, set_threads
 
 

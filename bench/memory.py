@@ -20,7 +20,6 @@ from pathlib import Path
 import httpx
 import numpy as np
 import torch
-
 from common import set_threads
 from latency import _ends, serving
 

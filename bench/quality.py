@@ -18,7 +18,6 @@ import time
 from pathlib import Path
 
 import numpy as np
-
 from common import scene_folders, set_threads
 
 
@@ -75,9 +74,9 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
 
 
 def main() -> None:
-    from geotween.models.evaluate import format_table
-
     from common import SCENES
+
+    from geotween.models.evaluate import format_table
 
     p = argparse.ArgumentParser()
     p.add_argument("--scene", choices=SCENES, default="demo")

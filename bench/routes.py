@@ -15,7 +15,6 @@ import json
 import time
 
 import numpy as np
-
 from common import set_threads
 
 

@@ -25,8 +25,8 @@ from .engine import FITTED_SIGNALS, REFINED_SIGNALS, ROUTES, Engine, ServingConf
 from .manifest import Calibration, Confidence, Manifest, RefineChoice, RefineHoldout, RouteChoice, Scores
 from .metrics import psnr_batch, ssim_batch
 from .nets import Autoencoder
-from .refine import RefineConfig
 from .params import SPAN_BUCKETS, span_bucket
+from .refine import RefineConfig
 from .triplets import mine_triplets
 
 DEFAULT_TAU = 0.90

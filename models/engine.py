@@ -21,12 +21,12 @@ import numpy as np
 import torch
 
 from . import graph as lgraph
+from . import refine as lrefine
 from . import route as lroute
 from .bundle import Bundle, load_bundle
 from .chart import SettingsChart
 from .confidence import ConfidenceModel
 from .geodesic import ROUTES, Planner, Route
-from . import refine as lrefine
 from .manifest import LEGACY_SIGNALS
 from .nets import inference_copy
 from .refine import RefineConfig

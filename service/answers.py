@@ -19,7 +19,6 @@ from dataclasses import dataclass, field
 from typing import Literal, Sequence
 
 from ..models.engine import FrameCounts
-
 from .imaging import encode_png, png_base64
 from .schemas import BetweenManifestOut, BetweenOut, FillManifestOut, FillOut
 

@@ -26,8 +26,8 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.middleware import Middleware
 
 from .deps import Services
-from .metrics import Metrics
 from .errors import HTTP_CODES, ErrorInfo, ServiceError, describe
+from .metrics import Metrics
 from .registry import RegistryError
 from .settings import Settings
 

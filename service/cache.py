@@ -15,7 +15,6 @@ from ..models.bundle import read_manifest
 from ..models.engine import Engine
 from ..models.manifest import Manifest
 from ..models.params import ParamSpace
-
 from .registry import ModelVersion, Registry, RegistryError
 
 MANIFESTS_KEPT = 256  # parsed manifests memoised; a few KB each

@@ -7,10 +7,21 @@ import json
 import sys
 import tempfile
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-from .cli_common import (EXIT_BAD_INPUT, EXIT_OK, EXIT_REJECTED, NO_REFINE_HELP, UsageError, add_global_options,
-                         configure_torch)
+from .cli_common import (
+    EXIT_BAD_INPUT,
+    EXIT_OK,
+    EXIT_REJECTED,
+    NO_REFINE_HELP,
+    UsageError,
+    add_global_options,
+    configure_torch,
+)
 from .cli_remote import add_commands
+
+if TYPE_CHECKING:  # for the annotation only: the engine imports torch, which --help does not need
+    from ..models.engine import Endpoint
 
 LATENT_MAP = "latent_map.png"  # bank codes (PCA) with the route(s) drawn, beside the frames or report
 

@@ -20,7 +20,6 @@ import io
 import time
 from pathlib import Path
 from typing import Any, Callable, Mapping, Sequence, TypeVar
-
 from urllib.parse import quote
 
 import httpx
@@ -28,8 +27,22 @@ import numpy as np
 from PIL import Image
 from pydantic import BaseModel, TypeAdapter, ValidationError
 
-from .schemas import (BetweenOut, DeletedOut, FillFrameOut, FillOut, FrameOut, HealthOut, JobOut, LatentMapOut,
-                      MapPointsOut, ModelListOut, ModelOut, ModelSummaryOut, ReadyOut, TrainingOut)
+from .schemas import (
+    BetweenOut,
+    DeletedOut,
+    FillFrameOut,
+    FillOut,
+    FrameOut,
+    HealthOut,
+    JobOut,
+    LatentMapOut,
+    MapPointsOut,
+    ModelListOut,
+    ModelOut,
+    ModelSummaryOut,
+    ReadyOut,
+    TrainingOut,
+)
 
 DEFAULT_TIMEOUT = httpx.Timeout(30.0, connect=5.0)  # seconds
 FINISHED = ("done", "failed", "cancelled")  # job states that no longer change

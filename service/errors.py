@@ -23,7 +23,6 @@ from dataclasses import dataclass
 
 from ..models.bundle import BundleError
 from ..models.scene import SceneError
-
 from .registry import InvalidName, ModelNotFound, RegistryError, VersionNotFound
 
 

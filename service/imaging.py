@@ -15,7 +15,6 @@ import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 
 from ..models.scene import image_to_array
-
 from .errors import InvalidImage, TooLarge
 
 FORMATS = ("PNG", "JPEG")

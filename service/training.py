@@ -11,7 +11,6 @@ from ..models.calibrate import DEFAULT_TAU
 from ..models.pipeline import train_bundle
 from ..models.scene import load_scene
 from ..models.train import TrainConfig, default_model_config
-
 from .registry import ModelVersion, Registry, check_name
 
 

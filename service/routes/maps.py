@@ -15,7 +15,6 @@ from typing import Annotated
 from fastapi import APIRouter, Query, Request
 from starlette.concurrency import run_in_threadpool
 
-
 from ..cache import ModelCache
 from ..deps import ModelName, ServicesDep, note
 from ..errors import BadInput

@@ -10,15 +10,25 @@ from starlette.concurrency import run_in_threadpool
 
 from ...models.engine import Endpoint
 from ...models.params import ParamSpace
-
 from ..answers import Answer, EncodedFrame, between_answer, fill_answer, fill_frames
 from ..cache import ModelCache
 from ..deps import ApiKeyDep, ModelName, Services, ServicesDep, note
 from ..errors import BadInput
 from ..imaging import decode_base64, open_image, to_model_array
 from ..registry import ModelVersion
-from ..schemas import (REFINE_REQUEST, BetweenManifestOut, BetweenOut, BetweenRequest, DeletedOut, FillManifestOut,
-                       FillOut, FillRequest, JobOut, ModelListOut, ModelOut)
+from ..schemas import (
+    REFINE_REQUEST,
+    BetweenManifestOut,
+    BetweenOut,
+    BetweenRequest,
+    DeletedOut,
+    FillManifestOut,
+    FillOut,
+    FillRequest,
+    JobOut,
+    ModelListOut,
+    ModelOut,
+)
 from .common import errors, media, respond
 
 router = APIRouter(prefix="/v1", tags=["models"])

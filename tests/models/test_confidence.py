@@ -9,8 +9,17 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import roc_auc_score
 from sklearn.preprocessing import StandardScaler
 
-from geotween.models.confidence import (Calibrator, ConfidenceModel, SignalCombiner, _pav, auroc, combine_signals,
-                               ece, fit_confidence, reliability_table)
+from geotween.models.confidence import (
+    Calibrator,
+    ConfidenceModel,
+    SignalCombiner,
+    _pav,
+    auroc,
+    combine_signals,
+    ece,
+    fit_confidence,
+    reliability_table,
+)
 
 
 def _json_round_trip(d: dict) -> dict:

@@ -141,7 +141,8 @@ def test_older_bundles_with_four_signals_still_score(small_bundle):
 
     from geotween.models.bundle import load_bundle
     from geotween.models.confidence import fit_confidence
-    from geotween.models.engine import LEGACY_SIGNALS as SIGNALS, Engine
+    from geotween.models.engine import LEGACY_SIGNALS as SIGNALS
+    from geotween.models.engine import Engine
     from geotween.models.manifest import Confidence
 
     bundle = load_bundle(small_bundle)

@@ -7,8 +7,8 @@ from sklearn.datasets import make_swiss_roll
 from sklearn.neighbors import kneighbors_graph
 
 from geotween.models.graph import LatentGraph, build_graph
-from geotween.models.search import lower_bound, nearest_nodes, path_with_ends, shortest_path
 from geotween.models.params import Parameter, ParamSpace
+from geotween.models.search import lower_bound, nearest_nodes, path_with_ends, shortest_path
 
 
 def spiral_arc(t):

@@ -8,8 +8,18 @@ from skimage import data
 
 from geotween.models.evaluate import load_truth
 from geotween.models.params import span_bucket
-from geotween.models.photo import (PHOTO_SPACE, TIGHTEST, WIDEST, crop_resample, photo_grid, photo_long_pairs,
-                                   photo_pairs, view, window_box, write_photo_scene)
+from geotween.models.photo import (
+    PHOTO_SPACE,
+    TIGHTEST,
+    WIDEST,
+    crop_resample,
+    photo_grid,
+    photo_long_pairs,
+    photo_pairs,
+    view,
+    window_box,
+    write_photo_scene,
+)
 from geotween.models.scene import load_scene
 
 STEP = 1.0 / 11.0  # 12 grid values over [0, 1]
@@ -43,9 +53,9 @@ def test_a_window_exactly_size_pixels_wide_at_whole_offsets_is_the_numpy_slice(c
             side = right - left
             if not all(_is_whole(v) for v in (left, top, right, bottom)):
                 continue
-            l, t, r, b, s = (int(round(v)) for v in (left, top, right, bottom, side))
+            x0, y0, x1, y1, s = (int(round(v)) for v in (left, top, right, bottom, side))
             got = view(coffee, pan, zoom, size=s)
-            assert np.array_equal(np.round(got * 255).astype(np.uint8), coffee[t:b, l:r]), (pan, zoom)
+            assert np.array_equal(np.round(got * 255).astype(np.uint8), coffee[y0:y1, x0:x1]), (pan, zoom)
             found += 1
     assert found >= 4  # zoom 0: side 360 px; zoom 1: side 180 px, several whole offsets each
     # the lower level, any whole box of 64 px

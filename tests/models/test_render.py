@@ -3,8 +3,20 @@ import numpy as np
 import pytest
 
 from geotween.models.params import Parameter, ParamSpace, span_bucket
-from geotween.models.render import (DEMO_SPACE, Tile, albedo_map, demo_grid, grid_pairs, heightfield,
-                                    long_truth_pairs, render, render_many, shadow_mask, truth_pairs, write_demo)
+from geotween.models.render import (
+    DEMO_SPACE,
+    Tile,
+    albedo_map,
+    demo_grid,
+    grid_pairs,
+    heightfield,
+    long_truth_pairs,
+    render,
+    render_many,
+    shadow_mask,
+    truth_pairs,
+    write_demo,
+)
 
 
 @pytest.mark.parametrize("azimuth, elevation", [(0, 20), (75, 35), (200, 50), (310, 70)])

@@ -1,7 +1,6 @@
 """Polyline routes: length, equal-arc-length resampling, relaxation, straight lines."""
 import numpy as np
 import pytest
-
 from scipy.spatial import cKDTree
 
 from geotween.models.route import at_t, interior_t, polyline_length, relax, resample, straight, taut

@@ -12,7 +12,8 @@ from PIL import Image
 from prometheus_client.parser import text_string_to_metric_families
 
 from geotween.models.confidence import fit_confidence
-from geotween.models.engine import FITTED_SIGNALS as SIGNALS, Engine, ServingConfig
+from geotween.models.engine import FITTED_SIGNALS as SIGNALS
+from geotween.models.engine import Engine, ServingConfig
 
 KEY = "test-key-0123456789abcdef"
 LIMITS = dict(max_body_bytes=256 * 1024, max_image_pixels=1_000_000, max_frames=16, max_fill_sync=4,

@@ -3,9 +3,9 @@ model given a confidence ("tile-cal"), and a TestClient of an app with an API ke
 import shutil
 
 import pytest
+from api_helpers import KEY, LIMITS, with_confidence
 from fastapi.testclient import TestClient
 
-from api_helpers import KEY, LIMITS, with_confidence
 from geotween.service.api import create_app
 from geotween.service.registry import Registry
 from geotween.service.settings import Settings

@@ -9,11 +9,20 @@ import zipfile
 
 import numpy as np
 import pytest
+from api_helpers import (
+    LIMITS,
+    P,
+    b64,
+    between_body,
+    decode_frame,
+    metric,
+    png,
+    with_confidence,  # noqa: F401  (test_contract imports it from here)
+    with_refine,
+)
 from fastapi.testclient import TestClient
 from PIL import Image
 
-from api_helpers import LIMITS, P, b64, between_body, decode_frame, metric, png, with_refine
-from api_helpers import with_confidence  # noqa: F401  (test_contract imports it from here)
 from geotween.models.engine import Endpoint, Engine, ServingConfig
 from geotween.models.render import render_many
 from geotween.service.api import create_app

@@ -7,10 +7,10 @@ import zlib
 
 import numpy as np
 import pytest
+from api_helpers import KEY, P, b64, between_body, metric, png
 from fastapi.testclient import TestClient
 from pydantic import ValidationError
 
-from api_helpers import KEY, P, b64, between_body, metric, png
 from geotween.service.api import create_app
 from geotween.service.settings import Settings
 

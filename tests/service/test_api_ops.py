@@ -5,10 +5,10 @@ import json
 import logging
 import shutil
 
+from api_helpers import KEY, SIGNALS, between_body, metric
 from fastapi.testclient import TestClient
 from prometheus_client.parser import text_string_to_metric_families
 
-from api_helpers import KEY, SIGNALS, between_body, metric
 from geotween.service.api import create_app
 from geotween.service.settings import Settings
 

@@ -165,8 +165,9 @@ def detail_registry(service_bundle, tmp_path_factory):
     figures are its own, from models.calibrate.choose_refine)."""
     import shutil
 
-    from geotween.service.registry import Registry
     from test_api import with_refine
+
+    from geotween.service.registry import Registry
 
     root = tmp_path_factory.mktemp("detail-reg")
     reg = Registry.open(root)

@@ -21,12 +21,12 @@ from jsonschema import Draft202012Validator
 from referencing import Registry as SchemaRegistry
 from referencing import Resource
 from referencing.jsonschema import DRAFT202012
+from test_api import P, with_confidence
 
 from geotween.service.api import create_app
 from geotween.service.cli import main
 from geotween.service.registry import Registry
 from geotween.service.settings import Settings
-from test_api import P, with_confidence
 
 DOC_URI = "urn:geotween:openapi"  # the base URI the OpenAPI document is registered under
 REFINING = Path(__file__).parents[1] / "data" / "bundle-v1"  # calibrated, detail transfer on

@@ -5,9 +5,9 @@ import time
 
 import pytest
 import torch
+from conftest import tiny_demo_scene
 from fastapi.testclient import TestClient
 
-from conftest import tiny_demo_scene
 from geotween.models.scene import save_scene
 from geotween.service.api import create_app
 from geotween.service.errors import Conflict, NotFound, Unavailable

@@ -3,9 +3,9 @@ requests, the client, and 8 concurrent callers. Loopback only; every wait is bou
 import json
 import os
 import re
+import shutil
 import signal
 import socket
-import shutil
 import subprocess
 import sys
 import threading

@@ -13,8 +13,16 @@ from pathlib import Path
 import pytest
 
 from geotween.service import registry as reg_mod
-from geotween.service.registry import (DEFAULT_ROOT, InvalidName, ModelNotFound, ModelVersion, Registry,
-                              RegistryError, VersionNotFound, resolve_root)
+from geotween.service.registry import (
+    DEFAULT_ROOT,
+    InvalidName,
+    ModelNotFound,
+    ModelVersion,
+    Registry,
+    RegistryError,
+    VersionNotFound,
+    resolve_root,
+)
 
 
 def make_build(metrics: dict, *, weights: bytes = b"\x00\x01" * 64, pause_s: float = 0.0,

@@ -15,11 +15,11 @@ from pathlib import Path
 import httpx
 import pytest
 from fastapi.testclient import TestClient
+from test_live import dockerfile_cmd, free_port, local_argv, wait_until_alive
 
 from geotween.service.api import create_app
 from geotween.service.registry import Registry
 from geotween.service.settings import Settings
-from test_live import dockerfile_cmd, free_port, local_argv, wait_until_alive
 
 ROOT = Path(__file__).resolve().parents[2]
 STATIC = ROOT / "service" / "static"
