@@ -220,7 +220,7 @@ def test_training_a_refining_model_stores_both_confidences(small_scene, tmp_path
     # training then stores: the confidence of refined frames and the one of decoded frames
     from dataclasses import replace
 
-    from conftest import SMALL_TRAIN
+    from tiny_scenes import SMALL_TRAIN
 
     from geotween.models import calibrate
     from geotween.models.engine import REFINED_SIGNALS, Engine

@@ -5,8 +5,8 @@ import time
 
 import pytest
 import torch
-from conftest import tiny_demo_scene
 from fastapi.testclient import TestClient
+from tiny_scenes import tiny_demo_scene
 
 from geotween.models.scene import save_scene
 from geotween.service.api import create_app
