@@ -34,7 +34,8 @@ MIN_FIT_ROWS, MIN_PER_CLASS = 12, 3  # fewer held-out frames, or of one kind, an
 SSIM_QUANTILES = (10, 50, 90)  # reported held-out SSIM quantiles of geodesic frames: which tau is reachable
 TUBES = (0.5, 0.75, 1.0, 1.5, 2.0)  # candidate tube radii, in local sample spacings
 MAX_SPAN = 12.0  # sample spacings: the longest calibration route (mining cost grows with its square)
-REFINE_MARGIN_DB = 0.2  # detail transfer must win by this much mean PSNR on the held-out truth
+REFINE_MARGIN_DB = 0.2  # detail transfer must win by this much mean PSNR on the held-out truth,
+REFINE_MARGIN_SSIM = 0.003  # or, losing no PSNR, by this much mean SSIM (what the confidence speaks about)
 REFINE_TOLERANCES = (0.05, 0.03)  # candidate trust tolerances (models.refine); the first is the default
 # candidate flow settings for detail transfer, cheapest first: "none" (bank images where they
 # stand) costs no flow estimate, which is most of the step's time and about 40% of a 16-frame
@@ -119,11 +120,19 @@ def pick_refine(tried: dict[str, dict[float, dict]]) -> tuple[str, float]:
     raise AssertionError("unreachable: the best candidate's flow qualifies")
 
 
+def refine_wins(decoded: dict, refined: dict) -> bool:
+    """Whether detail transfer earns its place on held-out scores {"psnr", "ssim"}: REFINE_MARGIN_DB
+    more mean PSNR without lowering mean SSIM, or REFINE_MARGIN_SSIM more mean SSIM without lowering
+    mean PSNR."""
+    gain_db, gain_ssim = refined["psnr"] - decoded["psnr"], refined["ssim"] - decoded["ssim"]
+    return bool((gain_db >= REFINE_MARGIN_DB and gain_ssim >= 0.0)
+                or (gain_ssim >= REFINE_MARGIN_SSIM and gain_db >= 0.0))
+
+
 def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
                   tolerances=REFINE_TOLERANCES, flows=REFINE_FLOWS, seed: int = 0) -> RefineChoice:
     """Turn detail transfer on (engine.refine) when, with the chosen flow setting and tolerance, it
-    beats the decoded geodesic frames on the held-out truth by REFINE_MARGIN_DB mean PSNR without
-    lowering mean SSIM. Every flow setting (`flows`, cheapest first) is tried with every tolerance;
+    beats the decoded geodesic frames on the held-out truth (`refine_wins`). Every flow setting (`flows`, cheapest first) is tried with every tolerance;
     the chosen one is the cheapest flow that comes within REFINE_TIE_DB / REFINE_TIE_SSIM of the
     best candidate, with its best tolerance. Returns the choice with its held-out figures
     ("by_tolerance": the chosen flow's candidates, "by_flow": every flow's)."""
@@ -149,7 +158,7 @@ def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np
     flow, best = pick_refine(tried)
     cfg = RefineConfig(tolerance=best, flow=flow)
     ref = tried[flow][best]
-    on = bool(ref["psnr"] >= dec["psnr"] + REFINE_MARGIN_DB and ref["ssim"] >= dec["ssim"])
+    on = refine_wins(dec, ref)
     engine.refine = cfg if on else None
     engine.signal_names = REFINED_SIGNALS if on else FITTED_SIGNALS  # the confidence follows
     held = RefineHoldout(decoded=Scores(**dec), refined=Scores(**ref),

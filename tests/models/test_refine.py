@@ -152,3 +152,16 @@ def test_a_moving_view_needs_the_flow_and_a_still_one_does_not(photo_views):
 def test_an_unknown_flow_setting_is_refused():
     with pytest.raises(ValueError, match="refine flow: 'optical'.*none"):
         lrefine.RefineConfig(flow="optical")
+
+
+@pytest.mark.parametrize("dec, ref, on", [
+    ({"psnr": 32.0, "ssim": 0.950}, {"psnr": 32.25, "ssim": 0.950}, True),    # PSNR margin, SSIM kept
+    ({"psnr": 32.0, "ssim": 0.950}, {"psnr": 32.25, "ssim": 0.949}, False),   # PSNR margin, SSIM lost
+    ({"psnr": 32.683, "ssim": 0.9559}, {"psnr": 32.859, "ssim": 0.9601}, True),  # the 64 px demo's held-out
+    ({"psnr": 32.0, "ssim": 0.950}, {"psnr": 31.99, "ssim": 0.960}, False),   # SSIM margin, PSNR lost
+    ({"psnr": 32.0, "ssim": 0.950}, {"psnr": 32.1, "ssim": 0.952}, False),    # neither margin
+])
+def test_refine_wins_on_either_margin_without_losing_the_other(dec, ref, on):
+    from geotween.models.calibrate import refine_wins
+
+    assert refine_wins(dec, ref) is on
