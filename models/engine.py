@@ -319,7 +319,8 @@ class Engine:
         way = self.route(zs, ps, ze, pe, route)
         t = lroute.interior_t(frames)
         codes = way.codes_at(t)
-        intended = self.space.lerp(ps, pe, t)
+        along = way.settings_at(t)
+        intended = self.space.lerp(ps, pe, t) if along is None else along
         return Answer(route=route, frames=self.frames_at(codes, t, intended, min_confidence, refine),
                       start_params=self.space.named(ps), end_params=self.space.named(pe),
                       codes=codes, path_nodes=way.nodes, ends=np.stack([zs, ze]), tau=self.tau)

@@ -43,11 +43,18 @@ class Route:
     line: np.ndarray
     nodes: np.ndarray
     _to_codes: Callable[[np.ndarray], np.ndarray] | None = None
+    _to_settings: Callable[[np.ndarray], np.ndarray] | None = None
 
     def codes_at(self, t) -> np.ndarray:
         """(K, d) codes at fractions t (K,) of the route's length (settings length for the geodesic)."""
         points = lroute.at_t(self.line, t)
         return points if self._to_codes is None else self._to_codes(points)
+
+    def settings_at(self, t) -> np.ndarray | None:
+        """(K, P) the settings the frames at fractions t should show, along the way the route goes
+        (for ends half a period apart on a periodic setting, either way is a short arc); None for
+        the straight route, whose frames should show the short-arc interpolation of the ends."""
+        return None if self._to_settings is None else self._to_settings(lroute.at_t(self.line, t))
 
 
 class Planner:
@@ -74,7 +81,7 @@ class Planner:
         _, nodes = lsearch.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
         u = self.unwrapped(np.vstack([p_start, self.params[nodes], p_end]))
         keep = lroute.taut(u, self.clearance, tube, step=self.clearance.step)
-        return Route("geodesic", u[keep], nodes, self._charted)
+        return Route("geodesic", u[keep], nodes, self._charted, self._settings)
 
     def unwrapped(self, settings: np.ndarray) -> np.ndarray:
         """(M, P) settings along a path -> (M, P) points in spacing units, continuous across the
@@ -90,5 +97,8 @@ class Planner:
             return np.vstack([start, start + short])
         return u
 
+    def _settings(self, points: np.ndarray) -> np.ndarray:
+        return self.space.wrap(points * self.scale + self.space.lo)
+
     def _charted(self, points: np.ndarray) -> np.ndarray:
-        return self.chart(self.space.wrap(points * self.scale + self.space.lo))
+        return self.chart(self._settings(points))

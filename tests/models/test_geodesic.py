@@ -7,7 +7,7 @@ import pytest
 from geotween.models.calibrate import calibrate_engine
 from geotween.models.clearance import Clearance
 from geotween.models.engine import Endpoint, Engine
-from geotween.models.geodesic import Planner
+from geotween.models.geodesic import Planner, Route
 from geotween.models.metrics import psnr_batch
 from geotween.models.params import Parameter, ParamSpace
 from geotween.models.render import DEMO_SPACE, render
@@ -81,3 +81,20 @@ def test_a_tau_the_model_cannot_reach_rejects_every_frame(small_engine):
     strict = Engine(dataclasses.replace(b, manifest=manifest))
     ans = strict.between(P(30, 40), P(200, 50), frames=6)
     assert all(f.confidence == 0.0 and not f.accepted for f in ans.frames)
+
+
+def test_ends_half_a_turn_apart_are_judged_along_the_way_the_route_goes(small_engine, monkeypatch):
+    # 90 -> 270 deg: both ways round are short arcs. Force the way through 0 deg (the short-arc
+    # interpolation of the ends goes through 180): the frames must be judged against the settings
+    # along the way taken, or every one of them looks half a turn off and is rejected.
+    planner = small_engine.planner
+    u = planner.unwrapped(np.array([[90.0, 40.0], [0.0, 40.0], [270.0, 40.0]]))
+    assert u[-1, 0] < u[0, 0]  # the path's own way (exactly half a turn: it stands)
+    forced = Route("geodesic", u, np.zeros(0, dtype=np.int64), planner._charted, planner._settings)
+    monkeypatch.setattr(small_engine, "route", lambda *args, **kw: forced)
+    ans = small_engine.between(P(90, 40), P(270, 40), frames=5)
+    shown = np.array([[f.params["lamp_azimuth"], f.params["lamp_elevation"]] for f in ans.frames])
+    along = forced.settings_at([f.t for f in ans.frames])
+    assert np.abs(DEMO_SPACE.delta(along, shown)[:, 0]).max() < 20.0   # the frames show the way taken
+    assert max(f.signals["settings"] for f in ans.frames) < 1.0         # and are judged by it
+    assert np.mean([f.confidence for f in ans.frames]) > 0.5
