@@ -8,7 +8,9 @@ vary from place to place. The clearance of a point is min over nearby bank codes
 (2m)-th nearest other bank code (m = the number of settings: on a grid that reaches the
 neighbours along every setting, so s_i is the coarser of the grid steps around z_i).
 
-Points are (K, d) codes in the graph's metric (warped codes, `LatentGraph.warp`).
+Points are (K, d): codes in the graph's metric (warped codes, `LatentGraph.warp`), or settings in
+sample-spacing units (`triplets.normalised_coords`, with its box for periodic settings), as the
+route planner uses it.
 """
 from __future__ import annotations
 
@@ -33,8 +35,8 @@ class Clearance:
         if isinstance(dims, bool) or not isinstance(dims, (int, np.integer)) or dims < 1:
             raise ValueError(f"dims: {dims!r} is out of range; allowed integers >= 1")
         self.bank = bank
-        # box: the period of each coordinate (inf where none), for points on a torus such as
-        # normalised settings with a periodic axis; points are wrapped into it before each look-up
+        # box: the period of every coordinate (as normalised_coords gives it: a periodic setting's
+        # period, a box wider than the data for the others); points are wrapped into it before each look-up
         self.box = None if box is None else np.asarray(box, dtype=np.float64)
         self.tree = tree if tree is not None else cKDTree(bank, boxsize=self.box)
         k = min(2 * int(dims), len(bank) - 1)
@@ -47,8 +49,7 @@ class Clearance:
         """(K,) clearance in local spacings and (K,) the bank index that gives it."""
         points = np.atleast_2d(np.asarray(points, dtype=np.float64))
         if self.box is not None:
-            points = np.where(np.isfinite(self.box), np.mod(points, np.where(np.isfinite(self.box), self.box, 1.0)),
-                              points)
+            points = np.mod(points, self.box)
         dist, idx = self.tree.query(points, k=self.candidates)
         dist, idx = dist.reshape(len(points), -1), idx.reshape(len(points), -1)
         ratio = dist / self.local[idx]
@@ -62,10 +63,7 @@ class Clearance:
     def segment_within(self, a: np.ndarray, b: np.ndarray, limit: float) -> bool:
         """True when every point of the segment a -> b (sampled at most `step` apart, ends
         included) keeps within `limit` local spacings of the bank."""
-        a, b = np.asarray(a, dtype=np.float64), np.asarray(b, dtype=np.float64)
-        n = max(int(np.ceil(np.linalg.norm(b - a) / self.step)), 1)
-        s = np.arange(0, n + 1)[:, None] / n
-        return bool(np.max(self(a + s * (b - a))) <= limit)
+        return self.worst(np.vstack([a, b])) <= limit
 
     def worst(self, line: np.ndarray) -> float:
         """The largest clearance along a polyline (M, d), sampled at most `step` apart."""
