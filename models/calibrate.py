@@ -94,9 +94,11 @@ def choose_tube(engine: Engine, holdout_params: np.ndarray, holdout_images: np.n
     s, m, t, a = bracketed(engine, holdout_params, seed=seed)
     if len(s) == 0:
         return engine.tube, {}
-    scores = {}
+    codes, params, scores = engine.bundle.codes, engine.bundle.params, {}
+    # the graph path does not depend on the tube: searched once per triplet, pulled taut per tube
+    paths = [engine.planner.path(codes[i], params[i], codes[k], params[k]) for i, k in zip(s, t)]
     for tube in map(float, candidates):
-        at = route_codes(engine, s, t, a, "geodesic", tube)
+        at = np.array([engine.planner.pulled(u, nodes, tube).codes_at([f])[0] for (u, nodes), f in zip(paths, a)])
         scores[tube] = float(np.mean(psnr_batch(engine.decode(at), holdout_images[m])))
     best = max(scores, key=lambda c: (round(scores[c], 6), -c))
     engine.tube = best

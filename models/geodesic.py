@@ -76,10 +76,25 @@ class Planner:
                  tube: float) -> Route:
         """The geodesic between two ends given by their codes and settings (P,), pulled taut within
         `tube` local sample spacings (> 0)."""
+        # where the short-arc line in settings already keeps within the tube, pulling any path taut
+        # ends in it (taut tries the whole chord first): no graph search is needed
+        chord = self.unwrapped(np.vstack([p_start, p_end]))
+        if tube > 0 and lroute.segment_within(chord[0], chord[1], self.clearance, tube, step=self.clearance.step):
+            return Route("geodesic", chord, np.zeros(0, dtype=np.int64), self._charted, self._settings)
+        return self.pulled(*self.path(z_start, p_start, z_end, p_end), tube)
+
+    def path(self, z_start: np.ndarray, p_start: np.ndarray, z_end: np.ndarray, p_end: np.ndarray
+             ) -> tuple[np.ndarray, np.ndarray]:
+        """The graph's shortest path between the ends as a settings polyline (M, P) in spacing
+        units (`unwrapped`), and the bank nodes it passes. It does not depend on the tube."""
+        _, nodes = lsearch.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
+        return self.unwrapped(np.vstack([p_start, self.params[nodes], p_end])), nodes
+
+    def pulled(self, u: np.ndarray, nodes: np.ndarray, tube: float) -> Route:
+        """The geodesic along the settings polyline `u` (from `path`), pulled taut within `tube`
+        local sample spacings (> 0)."""
         if not tube > 0:
             raise ValueError(f"tube: {tube!r} is out of range; allowed > 0 local sample spacings")
-        _, nodes = lsearch.path_with_ends(self.graph, z_start, z_end, attach=self.attach, return_nodes=True)
-        u = self.unwrapped(np.vstack([p_start, self.params[nodes], p_end]))
         keep = lroute.taut(u, self.clearance, tube, step=self.clearance.step)
         return Route("geodesic", u[keep], nodes, self._charted, self._settings)
 
