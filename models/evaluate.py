@@ -1,12 +1,14 @@
 """Quality report against a truth set: in-betweens by each method scored against the true views.
 
-Methods: what a user would otherwise reach for (cross-dissolve of the two end images, and dense
-optical-flow warping of both ends, `models.flow.tween`), the straight route between the two end
-codes, the geodesic route, and the model's own ceiling (decode(encode(true frame))), which no
-decoded route can beat. Routes are scored as served: when the model refines its frames with
-detail from real bank images (`models.refine`), the report also carries the decoded geodesic
-frames before refinement ("geodesic_decoded", with the confidence a refine=False request gets when
-the model has one), and refined frames may exceed the ceiling. Ends are the truth set's end images.
+Methods: what a user would otherwise reach for (cross-dissolve of the two end images, dense
+optical-flow warping of both ends, `models.flow.tween`, and the nearest capture: the model's bank
+image whose settings lie closest to the frame's true settings, a real photograph the user already
+has, shown in place of the frame), the straight route between the two end codes, the geodesic
+route, and the model's own ceiling (decode(encode(true frame))), which no decoded route can beat.
+Routes are scored as served: when the model refines its frames with detail from real bank images
+(`models.refine`), the report also carries the decoded geodesic frames before refinement
+("geodesic_decoded", with the confidence a refine=False request gets when the model has one), and
+refined frames may exceed the ceiling. Ends are the truth set's end images.
 
 Every number is also given per span bucket (`models.params.SPAN_BUCKETS`, by the reach of each
 pair's ends), so that a method which does well on short pairs and badly on long ones shows it.
@@ -26,7 +28,7 @@ from .metrics import psnr_batch, ssim_batch
 from .params import SPAN_BUCKETS, ParamSpace, span_bucket
 from .scene import image_to_array
 
-METHODS = ("dissolve", "flow", "straight", "geodesic", "ceiling")
+METHODS = ("dissolve", "flow", "nearest", "straight", "geodesic", "ceiling")
 TRUTH_FORMAT = "geotween-truth/1"
 
 
@@ -61,6 +63,18 @@ def pair_spans(space: ParamSpace, pairs: list[dict]) -> tuple[np.ndarray, list[s
     return reach, [span_bucket(r) for r in reach]
 
 
+def nearest_captures(space: ParamSpace, scale: np.ndarray | None, bank_params: np.ndarray,
+                     params: np.ndarray) -> np.ndarray:
+    """(N,) index into the bank of the capture nearest to each of (N, P) settings, by
+    `space.distance` with each axis divided by `scale` (the first of equals)."""
+    bank_params = np.asarray(bank_params, dtype=np.float64)
+    params = np.asarray(params, dtype=np.float64).reshape(-1, len(space))
+    if not len(bank_params):
+        raise ValueError("nearest capture: the bank is empty")
+    dist = space.distance(bank_params[None, :, :], params[:, None, :], scale)  # (N, bank)
+    return np.argmin(dist, axis=1)
+
+
 def _summary(psnr: np.ndarray, ssim: np.ndarray) -> dict:
     psnr = np.minimum(psnr, 99.0)
     return {"psnr": round(float(psnr.mean()), 3), "ssim": round(float(ssim.mean()), 4),
@@ -87,18 +101,21 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
     pacing = {"straight": [], "geodesic": []}
     conf = {"straight": ([], []), "geodesic": ([], []), "geodesic_decoded": ([], [])}
     rows, mapped, long_answer = [], [], None
+    bank_pixels = engine.bundle.mapped_pixels()  # uint8 (N, H, W, C); only the nearest captures are read
     for i, pair in enumerate(pairs):
         truth, t = pair["truth"], pair["t"]
         frame_bucket += [pair_bucket[i]] * len(t)
+        want = np.array([engine.space.vector(p) for p in pair["truth_params"]])
+        near = nearest_captures(engine.space, engine.scale, engine.bundle.params, want)
         outs = {"dissolve": (1 - t)[:, None, None, None] * pair["start_image"] + t[:, None, None, None] * pair["end_image"],
                 "flow": lflow.tween(pair["start_image"], pair["end_image"], t),
+                "nearest": np.asarray(bank_pixels[near], dtype=np.float32) / 255.0,
                 "ceiling": engine.decode(engine.encode(truth))}
         for route in ("straight", "geodesic"):
             ans = engine.between(Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"]),
                                  frames=len(t), route=route, min_confidence=min_confidence)
             outs[route] = np.stack([f.image for f in ans.frames])
             shown = np.array([engine.space.vector(f.params) for f in ans.frames])
-            want = np.array([engine.space.vector(p) for p in pair["truth_params"]])
             pacing[route] += list(engine.space.distance(shown, want, engine.scale))
             if engine.confidence is not None:
                 conf[route][0].extend(f.confidence for f in ans.frames)
@@ -212,8 +229,8 @@ def confidence_summary(prob: np.ndarray, faithful: np.ndarray, min_confidence: f
 
 
 def contact_sheet(rows: list, out: str | Path, *, gap: int = 2) -> Path:
-    """PNG grid: per pair, rows truth / dissolve / flow / straight / geodesic, frames left to right."""
-    labels = ("truth", "dissolve", "flow", "straight", "geodesic")
+    """PNG grid: per pair, rows truth / dissolve / flow / nearest / straight / geodesic, frames left to right."""
+    labels = ("truth", "dissolve", "flow", "nearest", "straight", "geodesic")
     blocks = []
     for truth, outs in rows:
         for lab in labels:

@@ -3,8 +3,19 @@ confidence numbers follow their definitions, and the buckets add up to the overa
 import numpy as np
 import pytest
 from PIL import Image
+from skimage.metrics import peak_signal_noise_ratio
 
-from geotween.models.evaluate import evaluate, format_table, long_map_path, pair_spans, span_report
+from geotween.models.evaluate import (
+    METHODS,
+    contact_sheet,
+    evaluate,
+    format_table,
+    load_truth,
+    long_map_path,
+    nearest_captures,
+    pair_spans,
+    span_report,
+)
 from geotween.models.params import SPAN_BUCKETS
 from geotween.models.render import DEMO_SPACE, long_truth_pairs, truth_pairs, write_truth
 
@@ -70,17 +81,71 @@ def test_per_bucket_confidence_follows_the_definitions():
     assert c["ece"] == pytest.approx((0.3 + 0.8) / 2, abs=1e-4)  # each alone in its bin, outcome 0
 
 
+# a hand-made bank of four captures (lamp azimuth deg, lamp elevation deg)
+BANK = np.array([[350.0, 40.0], [20.0, 40.0], [180.0, 20.0], [90.0, 70.0]])
+
+
+def test_the_nearest_capture_is_the_bank_sample_with_the_closest_settings():
+    targets = np.array([[3.0, 40.0],     # 13 deg from 350 across 0 deg, 17 from 20: the wrap decides
+                        [100.0, 25.0],   # unscaled: (90, 70) at 46.1 beats (180, 20) at 80.2
+                        [179.0, 21.0],
+                        [5.0, 40.0]])    # 15 deg from both 350 and 20: the first of equals
+    assert list(nearest_captures(DEMO_SPACE, None, BANK, targets)) == [0, 3, 2, 0]
+    # scaled by (15 deg, 1 deg) elevation weighs 15 times more: (180, 20) at (5.33, 5) beats (90, 70) at (0.67, 45)
+    assert list(nearest_captures(DEMO_SPACE, np.array([15.0, 1.0]), BANK, targets)) == [0, 2, 2, 0]
+    # brute force over the bank with plain Python arithmetic (short arc worked by hand)
+    rng = np.random.default_rng(0)
+    many = np.stack([rng.uniform(0, 360, 200), rng.uniform(20, 70, 200)], axis=-1)
+    for target, got in zip(many, nearest_captures(DEMO_SPACE, np.array([15.0, 10.0]), BANK, many)):
+        dists = []
+        for az, el in BANK:
+            arc = abs(target[0] - az) % 360.0
+            arc = min(arc, 360.0 - arc)
+            dists.append(((arc / 15.0) ** 2 + ((target[1] - el) / 10.0) ** 2) ** 0.5)
+        assert got == int(np.argmin(dists))
+    with pytest.raises(ValueError, match="empty"):
+        nearest_captures(DEMO_SPACE, None, np.zeros((0, 2)), targets)
+
+
+def test_the_contact_sheet_has_a_row_per_method_shown(tmp_path):
+    truth = np.zeros((3, 8, 8, 3), dtype=np.float32)
+    outs = {m: np.full_like(truth, 20 * (k + 1) / 255) for k, m in enumerate(METHODS)}  # grey 20, 40, ...
+    with Image.open(contact_sheet([(truth, outs), (truth, outs)], tmp_path / "sheet.png", gap=2)) as img:
+        sheet = np.asarray(img)
+    # per pair: truth, dissolve, flow, nearest, straight, geodesic (12 px tall each) and a 6 px gap
+    assert sheet.shape == (2 * (6 * 12 + 6), 3 * 12, 3)
+    nearest_row = sheet[3 * 12 + 2:3 * 12 + 10, 2:10]
+    assert (nearest_row == 20 * (METHODS.index("nearest") + 1)).all()
+
+
 @pytest.fixture(scope="module")
 def span_eval(small_engine, tmp_path_factory):
     root = tmp_path_factory.mktemp("span-eval")
     pairs = truth_pairs(4, seed=2) + long_truth_pairs(4, seed=0)  # 3 along azimuth, 1 across elevation
     truth = write_truth(root / "truth", pairs, size=small_engine.resolution)
     report = evaluate(small_engine, truth, latent_map=root / "latent_map.png", sheet_pairs=2)
-    return pairs, report
+    return pairs, report, truth
+
+
+def test_the_nearest_method_scores_the_bank_image_at_the_closest_settings(span_eval, small_engine):
+    _, report, truth_dir = span_eval
+    assert "nearest" in report["methods"] and all("nearest" in b["methods"] for b in report["by_span"].values()
+                                                  if b["methods"])
+    bank, params = small_engine.bundle.images(), small_engine.bundle.params
+    psnr = []
+    for pair in load_truth(truth_dir, small_engine.resolution, small_engine.channels):
+        for frame, named in zip(pair["truth"], pair["truth_params"]):
+            want = DEMO_SPACE.vector(named)
+            dist = [float(DEMO_SPACE.distance(p, want, small_engine.scale)) for p in params]
+            # PSNR against scikit-image's implementation (capped at 99 dB as the report caps it)
+            with np.errstate(divide="ignore"):  # a frame at a captured setting is that capture: infinite PSNR
+                psnr.append(min(99.0, peak_signal_noise_ratio(frame, bank[int(np.argmin(dist))], data_range=1.0)))
+    assert report["methods"]["nearest"]["psnr"] == pytest.approx(np.mean(psnr), abs=2e-3)
+    assert "confidence" not in report["methods"]["nearest"] and "pacing_error" not in report["methods"]["nearest"]
 
 
 def test_the_buckets_add_up_to_the_overall_report(span_eval):
-    pairs, report = span_eval
+    pairs, report, _ = span_eval
     by_span = report["by_span"]
     reach = [float(DEMO_SPACE.reach(p["start"], p["end"])) for p in pairs]
     for name, (low, high) in zip(by_span, [b["reach"] for b in by_span.values()]):
@@ -107,7 +172,7 @@ def test_the_buckets_add_up_to_the_overall_report(span_eval):
 
 
 def test_the_longest_pair_gets_its_own_latent_map_and_the_table_shows_every_bucket(span_eval, tmp_path):
-    pairs, report = span_eval
+    pairs, report, _ = span_eval
     reach = [float(DEMO_SPACE.reach(p["start"], p["end"])) for p in pairs]
     longest = report["longest_pair"]
     assert longest["index"] == int(np.argmax(reach)) and longest["reach"] == pytest.approx(max(reach), abs=1e-4)
