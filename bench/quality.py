@@ -1,11 +1,13 @@
 """In-between quality on a scene's truth set, against baselines, with confidence calibration.
 
-    python bench/quality.py [--scene demo|colour|photo] [--resolution 64] [--steps N]
+    python bench/quality.py [--scene KIND] [--resolution 64] [--steps N]
                             [--latent-dim D] [--w-ssim W] [--budget-seconds S] [--out DIR]
 
-Trains the scene's model (default settings unless told), with calibration, then runs the
-eval report: cross-dissolve, optical-flow warping, straight route, geodesic route (as served,
-refined when the model refines, plus the decoded frames before refinement), the model's ceiling;
+KIND is one of common.SCENES: demo, colour, photo, turntable, turntable-scattered, camera,
+camera-scattered. Trains the scene's model (default settings unless told), with calibration, then
+runs the eval report: cross-dissolve, optical-flow warping, nearest capture, straight route,
+geodesic route (as served, refined when the model refines, plus the decoded frames before
+refinement), the model's ceiling;
 PSNR, SSIM, p10, pacing, confidence ECE / AUROC / confusion, all of it overall and per span bucket
 (the truth set's short and long pairs); and route and 16-frame answer times.
 """

@@ -40,17 +40,19 @@ def test_quick_run_measures_every_stage(tmp_path):
     text = out.read_text()
     assert "Notes." in text and "--quick" in text
     for heading in ("Quality at 16 px", "Quality at 32 px", "Colour relief tile at 16 px", "Photo window at 16 px",
+                    "Turntable at 16 px", "Camera move at 16 px", "Turntable from scattered settings at 16 px",
                     "Latency and throughput", "Route search", "Service memory"):
         assert heading in text, heading
-    # every method row of the four quality tables carries numbers
-    for method in ("dissolve", "flow", "straight", "geodesic", "ceiling"):
+    tables = 7  # demo at two sizes, colour tile, photo window, turntable, camera move, scattered turntable
+    # every method row of the quality tables carries numbers
+    for method in ("dissolve", "flow", "nearest", "straight", "geodesic", "ceiling"):
         rows = re.findall(rf"^\| {method} \| ([0-9.]+) \| ([0-9.]+) \|", text, flags=re.M)
-        assert len(rows) == 4 and all(float(p) > 0 for p, _ in rows), method
+        assert len(rows) == tables and all(float(p) > 0 for p, _ in rows), method
     # each quality table is followed by its span table; the truth sets' long pairs fill the long bucket
-    assert text.count("By span (reach of each pair's ends") == 4
-    for method in ("dissolve", "geodesic", "ceiling"):
+    assert text.count("By span (reach of each pair's ends") == tables
+    for method in ("dissolve", "nearest", "geodesic", "ceiling"):
         rows = re.findall(rf"^\| long \| {method} \| ([0-9.]+) \| ([0-9.]+) \|", text, flags=re.M)
-        assert len(rows) == 4 and all(float(p) > 0 for p, _ in rows), method
+        assert len(rows) == tables and all(float(p) > 0 for p, _ in rows), method
     # routes agree with scipy's Dijkstra to rounding
     diffs = [float(x) for x in re.findall(r"\| ([0-9.]+e[+-][0-9]+) \(\d+ pairs\) \|", text)]
     assert len(diffs) == 3 and max(diffs) < 1e-9
