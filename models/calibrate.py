@@ -21,7 +21,7 @@ import numpy as np
 
 from .bundle import Bundle
 from .confidence import BoundConfidence, fit_confidence
-from .engine import FITTED_SIGNALS, REFINED_SIGNALS, ROUTES, Engine, ServingConfig
+from .engine import ROUTES, Engine, ServingConfig, fitted_signals
 from .manifest import Calibration, Confidence, Manifest, RefineChoice, RefineHoldout, RouteChoice, Scores
 from .metrics import psnr_batch, ssim_batch
 from .nets import Autoencoder
@@ -47,6 +47,12 @@ REFINE_TOLERANCES = (0.05, 0.03)  # candidate trust tolerances (models.refine); 
 REFINE_FLOWS = ("none", "dis")
 REFINE_TIE_DB = 0.1
 REFINE_TIE_SSIM = 0.001
+# frames made from the two captures that bracket them (models.pairs): candidate tolerances for the
+# agreement of the two warped captures, tried with DIS flow. The mode that serves the held-out
+# in-betweens best wins (mean SSIM, what the confidence speaks about; PSNR on a tie)
+PAIR_TOLERANCES = (0.05, 0.1)
+PAIR_FLOW = "dis-fine"  # models.flow.FINE_DIS: measured on the turntable scene, the best of the flows
+PAIR_RANKS = (1, 2)  # next-best brackets whose frames calibration adds (`calibration_frames`)
 
 
 def bracketed(engine: Engine, holdout_params: np.ndarray, *, span: float | None = None, tolerance: float = 0.15,
@@ -132,40 +138,50 @@ def refine_wins(decoded: dict, refined: dict) -> bool:
 
 
 def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
-                  tolerances=REFINE_TOLERANCES, flows=REFINE_FLOWS, seed: int = 0) -> RefineChoice:
-    """Turn detail transfer on (engine.refine) when, with the chosen flow setting and tolerance, it
-    beats the decoded geodesic frames on the held-out truth (`refine_wins`). Every flow setting (`flows`, cheapest first) is tried with every tolerance;
-    the chosen one is the cheapest flow that comes within REFINE_TIE_DB / REFINE_TIE_SSIM of the
-    best candidate, with its best tolerance. Returns the choice with its held-out figures
-    ("by_tolerance": the chosen flow's candidates, "by_flow": every flow's)."""
+                  tolerances=REFINE_TOLERANCES, flows=REFINE_FLOWS, pair_tolerances=PAIR_TOLERANCES,
+                  seed: int = 0) -> RefineChoice:
+    """How the model makes its frames sharp (engine.refine), chosen on the held-out truth of
+    geodesic in-betweens. Detail transfer: every flow setting (`flows`, cheapest first) with every
+    tolerance, keeping the cheapest flow within REFINE_TIE_DB / REFINE_TIE_SSIM of the best, with its
+    best tolerance. Frames from bracketing captures (mode "pair"): every `pair_tolerances`. The
+    better of the two modes (mean SSIM, then PSNR) is on when it beats the decoded frames
+    (`refine_wins`). Returns the choice with its held-out figures ("by_tolerance": the chosen
+    candidates, "by_flow": every detail-transfer flow's, and "pair" under by_flow)."""
     s, m, t, a = bracketed(engine, holdout_params, seed=seed)
     engine.refine = None
     if len(s) == 0:
         return RefineChoice(chosen=True, on=False, config=RefineConfig(tolerance=float(tolerances[0])))
     codes = route_codes(engine, s, t, a, "geodesic")
-    truth = holdout_images[m]
+    truth, place = holdout_images[m], holdout_params[m]
 
     def scored(img: np.ndarray) -> dict:
         return {"psnr": round(float(np.mean(np.minimum(psnr_batch(img, truth), 99.0))), 3),
                 "ssim": round(float(np.mean(ssim_batch(img, truth))), 4)}
 
+    def tried_with(cfg: RefineConfig) -> dict:
+        refined, fig = engine.refined(codes, decoded, cfg, place=place)
+        return {**scored(refined), "detail": round(float(np.mean(fig["detail"])), 4)}
+
     decoded = engine.decode(codes)
     dec = scored(decoded)
-    tried: dict[str, dict[float, dict]] = {}
-    for flow in flows:
-        tried[flow] = {}
-        for tol in map(float, tolerances):
-            refined, detail = engine.refined(codes, decoded, RefineConfig(tolerance=tol, flow=flow))
-            tried[flow][tol] = {**scored(refined), "detail": round(float(np.mean(detail)), 4)}
+    tried = {flow: {float(tol): tried_with(RefineConfig(tolerance=float(tol), flow=flow)) for tol in tolerances}
+             for flow in flows}
     flow, best = pick_refine(tried)
-    cfg = RefineConfig(tolerance=best, flow=flow)
-    ref = tried[flow][best]
+    cfg, ref, by_tol = RefineConfig(tolerance=best, flow=flow), tried[flow][best], tried[flow]
+    pair = {float(tol): tried_with(RefineConfig(tolerance=float(tol), flow=PAIR_FLOW, mode="pair"))
+            for tol in pair_tolerances}
+    if pair:
+        tol = max(pair, key=lambda k: (pair[k]["ssim"], pair[k]["psnr"], -k))
+        if (pair[tol]["ssim"], pair[tol]["psnr"]) > (ref["ssim"], ref["psnr"]):
+            cfg, ref, by_tol = RefineConfig(tolerance=tol, flow=PAIR_FLOW, mode="pair"), pair[tol], pair
     on = refine_wins(dec, ref)
     engine.refine = cfg if on else None
-    engine.signal_names = REFINED_SIGNALS if on else FITTED_SIGNALS  # the confidence follows
+    engine.signal_names = fitted_signals(engine.refine)  # the confidence follows
+    by_flow = {f: {str(k): v for k, v in by_t.items()} for f, by_t in tried.items()}
+    if pair:
+        by_flow["pair"] = {str(k): v for k, v in pair.items()}
     held = RefineHoldout(decoded=Scores(**dec), refined=Scores(**ref),
-                         by_tolerance={str(k): v for k, v in tried[flow].items()},
-                         by_flow={f: {str(k): v for k, v in by_tol.items()} for f, by_tol in tried.items()})
+                         by_tolerance={str(k): v for k, v in by_tol.items()}, by_flow=by_flow)
     return RefineChoice(chosen=True, on=on, config=cfg, holdout=held)
 
 
@@ -190,11 +206,24 @@ def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_image
     intended += list(holdout_params)
     truth += list(range(len(holdout_params)))
     kinds += ["fill"] * len(holdout_params)
-    codes = np.asarray(codes)
-    images, detail = engine.render(codes, refine)  # as served: refined when the model refines
-    sig = engine.signals(codes, images, np.asarray(intended), detail=detail, names=engine.scoring(refine)[0])
-    ssim = ssim_batch(images, holdout_images[np.asarray(truth)])
-    return sig, ssim, kinds
+    codes, intended = np.asarray(codes), np.asarray(intended)
+    # as served: refined when the model refines, a geodesic's and a fill's frames made where they should show
+    place = np.where(np.array(kinds)[:, None] == "straight", engine.settings_of(codes), intended)
+    names = engine.scoring(refine)[0]
+    images, figures = engine.render(codes, refine, place)
+    sig = [engine.signals(codes, images, intended, figures=figures, names=names)]
+    ssim = [ssim_batch(images, holdout_images[np.asarray(truth)])]
+    if refine and engine.refine is not None and engine.refine.mode == "pair":
+        # a held-out capture lies exactly between two bank samples; a served frame between captures
+        # often lies off every pair (inside a grid cell, beside scattered samples). The fill frames
+        # made from the next-best brackets show the confidence such frames
+        fill = len(holdout_params)
+        for rank in PAIR_RANKS:
+            more, fig = engine.render(fill_codes, refine, holdout_params, rank=rank)
+            sig.append(engine.signals(fill_codes, more, holdout_params, figures=fig, names=names))
+            ssim.append(ssim_batch(more, holdout_images))
+            kinds += [f"fill_bracket{rank + 1}"] * fill
+    return np.vstack(sig), np.concatenate(ssim), kinds
 
 
 def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,

@@ -21,6 +21,7 @@ import numpy as np
 import torch
 
 from . import graph as lgraph
+from . import pairs as lpairs
 from . import refine as lrefine
 from . import route as lroute
 from .bundle import Bundle, load_bundle
@@ -32,7 +33,8 @@ from .nets import inference_copy
 from .refine import RefineConfig
 from .train import to_images, to_tensor
 
-SIGNALS = LEGACY_SIGNALS + ("detail",)  # every signal the engine can compute
+# every signal the engine can compute; pair_* come with frames made from bracketing captures (models.pairs)
+SIGNALS = LEGACY_SIGNALS + ("detail", "pair_flow", "pair_span", "pair_off", "pair_gap")
 # what a new model's confidence is fitted on: image_cycle would cost a second decode per request
 # and adds nothing the cycle residual does not already carry (see bench/RESULTS.md). "nearest" is
 # left out because the calibration set cannot show it as it is served: each calibration frame
@@ -43,6 +45,18 @@ SIGNALS = LEGACY_SIGNALS + ("detail",)  # every signal the engine can compute
 FITTED_SIGNALS = ("cycle", "settings")
 # a refining model adds how little of the frame could be taken from real images (1 - detail share)
 REFINED_SIGNALS = FITTED_SIGNALS + ("detail",)
+# a model that makes frames from the captures that bracket them adds how much of the frame the two
+# captures disagree on (1 - detail), how much of the blend the flows could not follow, how long the
+# bracket is and how far the frame lies off it (sample spacings), and how far the frame lies from
+# the decoded one
+PAIR_SIGNALS = REFINED_SIGNALS + ("pair_flow", "pair_span", "pair_off", "pair_gap")
+
+
+def fitted_signals(refine: RefineConfig | None) -> tuple[str, ...]:
+    """The signals a model serving frames with `refine` (None: decoded only) fits its confidence on."""
+    if refine is None:
+        return FITTED_SIGNALS
+    return PAIR_SIGNALS if refine.mode == "pair" else REFINED_SIGNALS
 
 
 @dataclass(frozen=True)
@@ -140,14 +154,14 @@ class Engine:
         self.chart = SettingsChart(bundle.params, bundle.codes, self.space, self.scale,
                                    neighbours=config.chart_neighbours, fallback=self._head_codes)
         self.planner = Planner(self.graph, self.space, bundle.params, self.scale, self.chart, attach=config.attach)
+        self.bracketer = lpairs.Bracketer(self.planner.clearance.bank, self.planner.clearance.box)
         nn, _ = self.graph.tree.query(self.graph.warped, k=2)
         self.spacing = float(np.median(nn[:, 1]))  # typical code distance between bank neighbours
         conf = self.manifest.confidence
         self.confidence = None if conf is None else conf.predictor()
         self.tau = None if conf is None else conf.tau
         # a model computes only the signals its confidence was fitted on
-        self.signal_names = (conf.signals if conf is not None
-                             else REFINED_SIGNALS if self.refine is not None else FITTED_SIGNALS)
+        self.signal_names = conf.signals if conf is not None else fitted_signals(self.refine)
         # a refining model's second confidence, fitted on its decoded frames: what a request that
         # skips detail transfer (refine=False) is scored with; None for bundles trained without one
         plain = chosen.decoded_confidence
@@ -177,28 +191,47 @@ class Engine:
         large bank's pixels are read as frames need them, not held."""
         return self.bundle.mapped_pixels()
 
-    def refined(self, codes: np.ndarray, images: np.ndarray, cfg: RefineConfig | None = None
-                ) -> tuple[np.ndarray, np.ndarray]:
-        """Decoded `images` of `codes` with detail from the nearest bank images (models.refine),
-        and per frame the share of pixels taken from them."""
+    def refined(self, codes: np.ndarray, images: np.ndarray, cfg: RefineConfig | None = None,
+                place: np.ndarray | None = None, rank: int = 0) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+        """Decoded `images` of `codes` made sharp from real bank images, and per frame its figures
+        ({"detail": share of pixels taken from real images, plus the pair figures in "pair" mode}).
+        Mode "detail": detail from the nearest bank images (models.refine). Mode "pair": the frame
+        made from the two captures that bracket `place` (N, P), the settings it should show
+        (default: those the code shows), the decoded frame arbitrating (models.pairs); `rank` > 0
+        takes a worse bracket (for calibration)."""
         cfg = cfg or self.refine or RefineConfig()
+        if cfg.mode == "pair":
+            place = self.settings_of(codes) if place is None else np.asarray(place, dtype=np.float64)
+            u = (self.space.wrap(place) - self.space.lo) / self.scale
+            bracket = self.bracketer(u, rank)
+            out, fig = lpairs.synthesize(self._captures, bracket, images, tolerance=cfg.tolerance, method=cfg.flow,
+                                         pool=self._refine_pool)
+            return out, {"detail": fig["detail"], "pair_flow": fig["flow_error"], "pair_span": bracket.length,
+                         "pair_off": bracket.off, "pair_gap": fig["decoded_gap"]}
         k = min(cfg.neighbours, len(self.bundle.codes))
         _, idx = self.graph.tree.query(self.graph.warp(codes), k=k)
-        refs = self.bank_pixels[np.asarray(idx).reshape(len(codes), k)].astype(np.float32) / 255.0
-        return lrefine.refine(images, refs, cfg, pool=self._refine_pool)
+        refs = self._captures(np.asarray(idx).reshape(len(codes), k))
+        out, detail = lrefine.refine(images, refs, cfg, pool=self._refine_pool)
+        return out, {"detail": detail}
+
+    def _captures(self, idx: np.ndarray) -> np.ndarray:
+        """Float images in [0, 1] of bank indices (any shape), read from the bank's pixels."""
+        return self.bank_pixels[idx].astype(np.float32) / 255.0
 
     @cached_property
     def _refine_pool(self) -> ThreadPoolExecutor | None:
         threads = self.config.refine_threads
         return ThreadPoolExecutor(threads, thread_name_prefix="refine") if threads > 1 else None
 
-    def render(self, codes: np.ndarray, refine: bool = True) -> tuple[np.ndarray, np.ndarray | None]:
-        """The frames as served: decoded, then refined when this model refines and `refine` does
-        not turn it off; (images, detail share per frame or None)."""
+    def render(self, codes: np.ndarray, refine: bool = True, place: np.ndarray | None = None, rank: int = 0
+               ) -> tuple[np.ndarray, dict[str, np.ndarray] | None]:
+        """The frames as served: decoded, then made sharp from real images when this model refines
+        and `refine` does not turn it off; (images, per-frame figures of `refined`, or None).
+        `place`: the settings each frame should show (pair mode brackets them)."""
         images = self.decode(codes)
         if self.refine is None or not refine:
             return images, None
-        return self.refined(codes, images)
+        return self.refined(codes, images, place=place, rank=rank)
 
     def scoring(self, refine: bool = True) -> tuple[tuple[str, ...], ConfidenceModel | None]:
         """(signal names, confidence model) for frames rendered with `refine`: a refining model's
@@ -262,14 +295,20 @@ class Engine:
 
     # -- confidence ---------------------------------------------------------------------------
     def signals(self, codes: np.ndarray, images: np.ndarray, intended: np.ndarray,
-                shown: np.ndarray | None = None, detail: np.ndarray | None = None,
+                shown: np.ndarray | None = None, figures: Mapping[str, np.ndarray] | None = None,
                 names: Sequence[str] | None = None) -> np.ndarray:
         """(N, len(self.signal_names)) off-manifold signals, each larger = worse: the cycle residual
         ||E(D(z)) - z|| and the distance to the nearest bank code (both in code spacings), the
         distance between the settings the frame shows and those it should show (settings
-        spacings), the RMS pixel change of a second round trip D(E(D(z))), and the share of the frame
-        detail transfer could not take from real images (1 - detail; 1 for an unrefined frame).
-        `names`: the signals to compute (default self.signal_names)."""
+        spacings), the RMS pixel change of a second round trip D(E(D(z))), the share of the frame
+        that could not be taken from real images (1 - detail; 1 for an unrefined frame), and for
+        frames made from bracketing captures the pair figures (`refined`; 0 for other frames).
+        `names`: the signals to compute (default self.signal_names); `figures`: from `render`."""
+        figures = figures or {}
+
+        def figure(name: str) -> np.ndarray:
+            return np.asarray(figures[name], float) if name in figures else np.zeros(len(codes))
+
         names = self.signal_names if names is None else tuple(names)
         with torch.inference_mode():
             round_trip = {"cycle", "image_cycle"} & set(names)
@@ -281,20 +320,22 @@ class Engine:
                 "settings": lambda: self.space.distance(self.settings_of(codes) if shown is None else shown,
                                                         intended, self.scale),
                 "image_cycle": lambda: np.sqrt(np.mean((img2 - images) ** 2, axis=(1, 2, 3))),
-                "detail": lambda: 1.0 - (np.zeros(len(codes)) if detail is None else np.asarray(detail, float))}
+                "detail": lambda: 1.0 - figure("detail"),
+                **{n: (lambda n=n: figure(n)) for n in ("pair_flow", "pair_span", "pair_off", "pair_gap")}}
         return np.stack([make[n]() for n in names], axis=1).reshape(len(codes), len(names))
 
     def frames_at(self, codes: np.ndarray, t: np.ndarray, intended: np.ndarray, min_confidence: float = 0.5,
-                  refine: bool = True) -> list[Frame]:
+                  refine: bool = True, place: np.ndarray | None = None) -> list[Frame]:
         """Frames for `codes` (N, d) at route fractions `t`, each meant to show the settings
-        `intended` (N, P): rendered, read by the code-to-settings head, scored (as between does)."""
+        `intended` (N, P): rendered, read by the code-to-settings head, scored (as between does).
+        `place`: where a frame made from bracketing captures is made (default: the settings the code shows)."""
         names, model = self.scoring(refine)
         if model is None and self.confidence is not None:
             raise ValueError("refine: this model version has no confidence fitted on frames without "
                              "detail transfer; ask with refine true, or train a new version")
-        images, detail = self.render(codes, refine)
         shown = self.settings_of(codes)
-        sig = self.signals(codes, images, intended, shown, detail, names=names)
+        images, figures = self.render(codes, refine, shown if place is None else place)
+        sig = self.signals(codes, images, intended, shown, figures, names=names)
         conf = None if model is None else model.predict(sig)
         frames = []
         for i in range(len(codes)):
@@ -302,7 +343,7 @@ class Engine:
             frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(shown[i]),
                                 confidence=c, accepted=c is not None and c >= min_confidence,
                                 signals=dict(zip(names, map(float, sig[i]))),
-                                detail=None if detail is None else float(detail[i])))
+                                detail=None if figures is None else float(figures["detail"][i])))
         return frames
 
     def between(self, start: Endpoint, end: Endpoint, frames: int = 8, route: str = "geodesic",
@@ -321,7 +362,9 @@ class Engine:
         codes = way.codes_at(t)
         along = way.settings_at(t)
         intended = self.space.lerp(ps, pe, t) if along is None else along
-        return Answer(route=route, frames=self.frames_at(codes, t, intended, min_confidence, refine),
+        # a geodesic's frames are made where the route puts them; the straight route's where its codes lie
+        frames = self.frames_at(codes, t, intended, min_confidence, refine, place=along)
+        return Answer(route=route, frames=frames,
                       start_params=self.space.named(ps), end_params=self.space.named(pe),
                       codes=codes, path_nodes=way.nodes, ends=np.stack([zs, ze]), tau=self.tau)
 
@@ -334,7 +377,7 @@ class Engine:
             raise ValueError(f"min_confidence: {min_confidence!r} is outside [0, 1]")
         p = np.array([self.space.vector(tg) for tg in targets]).reshape(len(targets), len(self.space))
         codes = self.code_of_settings(p)
-        frames = self.frames_at(codes, np.zeros(len(p)), p, min_confidence, refine)
+        frames = self.frames_at(codes, np.zeros(len(p)), p, min_confidence, refine, place=p)
         for f in frames:
             f.t = 0.0
         return frames

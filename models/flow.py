@@ -37,22 +37,34 @@ def luma8(img: np.ndarray) -> np.ndarray:
     return np.round(np.clip(img, 0.0, 1.0) * 255.0).astype(np.uint8)
 
 
-METHODS = ("farneback", "dis")
-_DIS = threading.local()  # one DIS object per thread: an OpenCV DIS object must not be shared
-# between threads (measured: two threads calling one object corrupted the heap)
+METHODS = ("farneback", "dis", "dis-fine")
+_DIS = threading.local()  # one DIS object per thread and kind: an OpenCV DIS object must not be
+# shared between threads (measured: two threads calling one object corrupted the heap)
+# "dis-fine": DIS down to the full resolution (finest scale 0, the preset stops at half) with 4 px
+# patches every 2 px, for frames made from two captures, where every pixel's motion counts.
+# Measured on the turntable scene at 64 px (midpoints of captures 15 deg of yaw or 20 deg of camera
+# height apart, blended by models.pairs): SSIM 0.889 / 0.882 against 0.770 / 0.789 with the
+# "medium" preset and 0.870 / 0.785 with Farneback, at about 2.5x the preset's time
+FINE_DIS = dict(finest_scale=0, patch_size=4, patch_stride=2)
 
 
-def _dis() -> "cv2.DISOpticalFlow":
-    if not hasattr(_DIS, "estimator"):
-        _DIS.estimator = cv2.DISOpticalFlow_create(cv2.DISOPTICAL_FLOW_PRESET_MEDIUM)
-    return _DIS.estimator
+def _dis(kind: str = "dis") -> "cv2.DISOpticalFlow":
+    if not hasattr(_DIS, kind):
+        estimator = cv2.DISOpticalFlow_create(cv2.DISOPTICAL_FLOW_PRESET_MEDIUM)
+        if kind == "dis-fine":
+            estimator.setFinestScale(FINE_DIS["finest_scale"])
+            estimator.setPatchSize(FINE_DIS["patch_size"])
+            estimator.setPatchStride(FINE_DIS["patch_stride"])
+        setattr(_DIS, kind, estimator)
+    return getattr(_DIS, kind)
 
 
 def flow(a: np.ndarray, b: np.ndarray, settings: dict | None = None, method: str = "farneback") -> np.ndarray:
     """(H, W, 2) float32 displacement (dx, dy) in pixels with a(x) ~ b(x + f(x)); `settings` are
-    Farneback's (default FARNEBACK); method "dis" uses dense inverse search instead."""
-    if method == "dis":
-        return _dis().calc(luma8(a), luma8(b), None)
+    Farneback's (default FARNEBACK); method "dis" uses dense inverse search instead, "dis-fine" the
+    same down to full resolution with smaller patches (FINE_DIS)."""
+    if method in ("dis", "dis-fine"):
+        return _dis(method).calc(luma8(a), luma8(b), None)
     if method != "farneback":
         raise ValueError(f"flow method: {method!r} is not allowed; expected one of {list(METHODS)}")
     return cv2.calcOpticalFlowFarneback(luma8(a), luma8(b), None, **(settings or FARNEBACK))

@@ -39,6 +39,9 @@ import numpy as np
 from . import flow as lflow
 
 FLOWS = lflow.METHODS + ("none",)  # "none": each bank image is used where it stands, not warped
+# "detail": detail from the nearest bank images onto the decoded frame (this module); "pair": the
+# frame made from the two captures that bracket it, the decoded frame arbitrating (models.pairs)
+MODES = ("detail", "pair")
 
 
 @dataclass(frozen=True)
@@ -49,13 +52,23 @@ class RefineConfig:
     split: float = 1.5       # px, Gaussian sigma that separates fine detail from the coarse picture
     tolerance: float = 0.05  # disagreement (in [0, 1] intensity) at which trust falls to 1/e
     flow: str = "dis"        # flow estimator (FLOWS): DIS measured as good as Farneback, 4x faster
+    mode: str = "detail"     # MODES; "pair" uses `flow` (not "none") and `tolerance` (agreement of the two captures)
 
     def __post_init__(self):
-        if self.flow not in FLOWS:
-            raise ValueError(f"refine flow: {self.flow!r} is not allowed; expected one of {list(FLOWS)}")
+        if self.mode not in MODES:
+            raise ValueError(f"refine mode: {self.mode!r} is not allowed; expected one of {list(MODES)}")
+        allowed = lflow.METHODS if self.mode == "pair" else FLOWS
+        if self.flow not in allowed:
+            raise ValueError(f"refine flow: {self.flow!r} is not allowed with mode {self.mode!r}; "
+                             f"expected one of {list(allowed)}")
 
     def to_dict(self) -> dict:
-        return asdict(self)
+        """The stored config; `mode` only when it is not "detail" (what a config without one means),
+        so bundles written before the mode existed read back to the same manifest."""
+        out = asdict(self)
+        if out["mode"] == "detail":
+            del out["mode"]
+        return out
 
     @classmethod
     def from_dict(cls, d: dict | None) -> "RefineConfig":
@@ -64,13 +77,14 @@ class RefineConfig:
         names = cls.__dataclass_fields__
         kept = {k: v for k, v in (d or {}).items() if k in names}
         kept.setdefault("flow", "farneback")
+        kept.setdefault("mode", "detail")  # written before frames could be made from bracketing captures
         return cls(**kept)
 
 
 _CHANNELS = 128  # channels per OpenCV call (OpenCV 5 takes at most 128; 4.x, 512)
 
 
-def _blur(x: np.ndarray, sigma: float) -> np.ndarray:
+def blur(x: np.ndarray, sigma: float) -> np.ndarray:
     """Gaussian blur over H and W of (..., H, W, C) float32 images, edges repeated. The images go
     through OpenCV as one many-channel image (up to 128 channels a call): OpenCV's kernel reaches
     4 sigma like scipy.ndimage.gaussian_filter's default and matches it to 1e-6, in a fifth of
@@ -113,10 +127,10 @@ def refine(decoded: np.ndarray, refs: np.ndarray, cfg: RefineConfig = RefineConf
         jobs = [(i, j) for i in range(n) for j in range(k)]
         done = pool.map(warped, jobs) if pool is not None and len(jobs) > 1 else map(warped, jobs)
         warp = np.stack(list(done)).reshape(refs.shape)                              # (N, k, H, W, C)
-    err = np.abs(_blur(warp, cfg.match) - decoded[:, None]).mean(axis=-1, keepdims=True)
-    trust = np.exp(-(_blur(err, cfg.spread) / cfg.tolerance) ** 2)                   # (N, k, H, W, 1)
+    err = np.abs(blur(warp, cfg.match) - decoded[:, None]).mean(axis=-1, keepdims=True)
+    trust = np.exp(-(blur(err, cfg.spread) / cfg.tolerance) ** 2)                   # (N, k, H, W, 1)
     best = trust.max(axis=1)
-    detail = (trust * (warp - _blur(warp, cfg.split))).sum(axis=1) / np.maximum(trust.sum(axis=1), 1e-6)
-    coarse = _blur(decoded, cfg.split)
+    detail = (trust * (warp - blur(warp, cfg.split))).sum(axis=1) / np.maximum(trust.sum(axis=1), 1e-6)
+    coarse = blur(decoded, cfg.split)
     out = coarse + best * detail + (1.0 - best) * (decoded - coarse)
     return np.clip(out, 0.0, 1.0).astype(np.float32), best.reshape(n, -1).mean(axis=1).astype(np.float64)

@@ -13,10 +13,11 @@ from typing import Literal
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 NOTICE = "frames are synthesized by a learned model, not captured"
-DETAIL = ("share of the frame's pixels, 0 to 1, carried over from real training images by detail transfer: "
-          "the nearest captured images are moved onto the frame along an estimated optical flow and kept only "
-          "where they agree with the decoded frame. The frame is still synthesized, not captured. null when the "
-          "model does not refine (chosen per model at training time)")
+DETAIL = ("share of the frame's pixels, 0 to 1, carried over from real training images: by detail transfer (the "
+          "nearest captured images moved onto the frame along an estimated optical flow, kept only where they "
+          "agree with the decoded frame) or, on a model whose refine.config.mode is 'pair', the share where the two "
+          "captures around the frame, each moved to it along the optical flow between them, agree. The frame is "
+          "still synthesized, not captured. null when the model does not refine (chosen per model at training time)")
 CONFIDENCE = ("calibrated probability that SSIM vs the true view >= tau; null when the model has no "
               "confidence, and such a frame is never accepted")
 TAU = ("the SSIM against the true view that the frames' confidence speaks about (chosen per model at training, "
@@ -369,7 +370,11 @@ class RefineOut(_Out):
                                             "warped per frame; match, spread: blur sigmas in px; tolerance: "
                                             "disagreement in [0, 1] intensity at which trust falls to 1/e; "
                                             "flow: how images are moved onto the frame, 'dis' or 'farneback' "
-                                            "optical flow, or 'none' where camera and subject stand still)")
+                                            "optical flow, or 'none' where camera and subject stand still; "
+                                            "mode: absent or 'detail' for detail transfer onto the decoded frame, "
+                                            "'pair' for frames made from the two captures around each, warped "
+                                            "to it along the flow between them and blended, the decoded frame "
+                                            "choosing where they disagree)")
     holdout: RefineHoldoutOut | None = Field(description="held-out figures behind the choice; null when there "
                                                          "were none")
     skippable: bool = Field(False, description="true: a request may send refine false and get the decoded frames "

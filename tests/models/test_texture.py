@@ -2,7 +2,7 @@
 scikit-image wheel) seen through a window that pans and zooms; truth frames are exact crops."""
 import pytest
 
-from geotween.models.calibrate import REFINE_FLOWS, pick_refine
+from geotween.models.calibrate import PAIR_FLOW, REFINE_FLOWS, pick_refine, refine_wins
 from geotween.models.engine import Endpoint, Engine, ServingConfig
 from geotween.models.evaluate import evaluate, format_table
 from geotween.models.photo import write_photo_scene
@@ -53,12 +53,20 @@ def test_the_held_out_choice_is_recorded_and_followed(photo_model):
     chosen = engine.manifest.refine
     held, cfg = chosen.holdout, chosen.config
     assert held.by_tolerance and held.by_flow
-    # every flow setting was scored, and the recorded choice is the rule's on those scores
-    assert list(held.by_flow) == list(REFINE_FLOWS)
-    scores = {f: {float(k): v for k, v in by_tol.items()} for f, by_tol in held.by_flow.items()}
-    assert pick_refine(scores) == (cfg.flow, cfg.tolerance)
-    assert held.refined.to_dict() == held.by_flow[cfg.flow][str(cfg.tolerance)]
-    wins = held.refined.psnr >= held.decoded.psnr + 0.2 and held.refined.ssim >= held.decoded.ssim
+    # every flow setting and the frames from bracketing captures were scored, and the recorded
+    # choice is the rule's on those scores: the better mode by mean SSIM (then PSNR)
+    assert list(held.by_flow) == list(REFINE_FLOWS) + ["pair"]
+    detail = {f: {float(k): v for k, v in held.by_flow[f].items()} for f in REFINE_FLOWS}
+    flow, tol = pick_refine(detail)
+    pair = {float(k): v for k, v in held.by_flow["pair"].items()}
+    best_pair = max(pair, key=lambda k: (pair[k]["ssim"], pair[k]["psnr"], -k))
+    pair_wins = (pair[best_pair]["ssim"], pair[best_pair]["psnr"]) > (detail[flow][tol]["ssim"], detail[flow][tol]["psnr"])
+    if pair_wins:
+        assert (cfg.mode, cfg.flow, cfg.tolerance) == ("pair", PAIR_FLOW, best_pair)
+    else:
+        assert (cfg.mode, cfg.flow, cfg.tolerance) == ("detail", flow, tol)
+    assert held.refined.to_dict() == held.by_flow["pair" if pair_wins else cfg.flow][str(cfg.tolerance)]
+    wins = refine_wins(held.decoded.to_dict(), held.refined.to_dict())
     assert chosen.on == wins and (engine.refine is not None) == wins
     ans = engine.between(Endpoint(params={"pan": 0.1, "zoom": 0.2}), Endpoint(params={"pan": 0.6, "zoom": 0.7}),
                          frames=4)

@@ -1,0 +1,177 @@
+"""Frames made from the two real captures around them.
+
+A frame on a route shows settings s. Two bank captures whose settings bracket s (s on, or near,
+the segment between them) hold nearly every pixel the frame needs when the subject or the camera
+moves: the frame is synthesized from them, and the decoded frame only arbitrates.
+
+Bracket (`Bracketer`): among the bank samples nearest to s (settings in sample-spacing units,
+periodic settings wrapped), the pair (i, j) whose segment passes closest to s, preferring short
+pairs: cost = off + LENGTH_COST * length, where off is the distance from s to the segment and
+length the segment's. A single capture (length 0) is the bracket of a frame at its setting (within
+AT_CAPTURE); anywhere else it costs SINGLE_COST more, so a pair through s wins (measured on the
+photo window: a capture 0.44 spacings from the frame, taken whole, gave SSIM 0.55-0.6 where the pair
+through the frame gave 0.95). `at` is where s projects on the segment, from i (0) to j (1).
+
+Synthesis (`synthesize`), for captures A, B, fraction a and decoded frame D, all (H, W, C):
+    F_AB, F_BA     dense flow both ways (models.flow: A(x) ~ B(x + F_AB(x)))
+    e_A(x)         = |F_AB(x) + F_BA(x + F_AB(x))|        forward-backward inconsistency at A's pixels
+    to_A, to_B     flows from the frame back to A and to B (points moving on straight lines at
+                   constant speed, as models.flow.tween): W_A = warp(A, to_A), W_B = warp(B, to_B)
+    v_A            = exp(-(e_A(x + to_A) / CONSISTENCY)^2)  A's pixel is seen in both captures
+    P              = ((1 - a) v_A W_A + a v_B W_B) / ((1 - a) v_A + a v_B)        occlusion-aware blend
+    g              = exp(-(spread(|W_A - W_B|) / tolerance)^2)  where the two warped captures agree
+    X              = the warped captures weighted by closeness to D (1 / (c^2 + DELTA^2), c the blurred
+                     difference to D) and by visibility: where they disagree (a light that moved, a
+                     part that came into view), the decoded frame picks which capture to believe
+    out            = g P + (1 - g) X
+Per frame it reports the share of pixels where the captures agree (mean g, the frame's `detail`),
+the inconsistency of the flows it used, and how far the result lies from the decoded frame: the
+confidence signals of a model that serves these frames.
+"""
+from __future__ import annotations
+
+from concurrent.futures import Executor
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from . import flow as lflow
+from .refine import blur
+
+LENGTH_COST = 0.2   # spacings of `off` one spacing of bracket length is worth: a 1-spacing pair
+#                     through s (0.2) beats a capture half a spacing away (0.5)
+MAX_LENGTH = 3.0    # spacings: longer pairs are not brackets (the flow between them gets unreliable);
+#                     a held-out or missing capture leaves 2-spacing gaps, and their diagonals are longer
+AT_CAPTURE = 0.05   # spacings: a frame this close to a capture is that capture
+SINGLE_COST = 1.0   # what a single capture costs beyond its distance anywhere else
+NEIGHBOURS = 8      # nearest bank samples among which the bracket is chosen
+CONSISTENCY = 1.0   # px of forward-backward inconsistency at which visibility falls to 1/e
+MATCH, SPREAD = 1.0, 1.5  # px: blur before comparing with the decoded frame, and pooling of differences
+DELTA = 0.02        # closeness to the decoded frame below which a capture is fully believed
+PAIR_FLOWS = lflow.METHODS
+
+
+@dataclass
+class Bracket:
+    """Per frame: the captures `first` and `second` (bank indices; equal for a single capture),
+    the fraction `at` from first to second, the bracket's `length` and the frame's distance `off`
+    from it (both in sample spacings)."""
+    first: np.ndarray
+    second: np.ndarray
+    at: np.ndarray
+    length: np.ndarray
+    off: np.ndarray
+
+
+class Bracketer:
+    """Brackets of settings points among bank samples `u` (M, P) in spacing units, `box` the
+    period of every coordinate (triplets.normalised_coords)."""
+
+    def __init__(self, u: np.ndarray, box: np.ndarray, *, neighbours: int = NEIGHBOURS,
+                 length_cost: float = LENGTH_COST, max_length: float = MAX_LENGTH):
+        self.u, self.box = np.asarray(u, dtype=np.float64), np.asarray(box, dtype=np.float64)
+        self.tree = cKDTree(np.mod(self.u, self.box), boxsize=self.box)
+        self.k = min(int(neighbours), len(self.u))
+        self.length_cost, self.max_length = float(length_cost), float(max_length)
+
+    def __call__(self, points: np.ndarray, rank: int = 0) -> Bracket:
+        """The bracket of each point; rank r > 0: the (r+1)-th cheapest instead (calibration uses
+        them to show the confidence frames made from brackets that miss the point, as served frames
+        between captures can)."""
+        s = np.mod(np.atleast_2d(np.asarray(points, dtype=np.float64)), self.box)
+        _, idx = self.tree.query(s, k=self.k)
+        idx = np.asarray(idx).reshape(len(s), self.k)
+        d = self.u[idx] - s[:, None, :]
+        d -= self.box * np.round(d / self.box)                       # (N, K, P) nearest images
+        i, j = np.triu_indices(self.k, 1)
+        i, j = np.concatenate([np.arange(self.k), i]), np.concatenate([np.arange(self.k), j])  # singles first
+        di, dj = d[:, i], d[:, j]                                    # (N, Q, P)
+        seg = dj - di
+        length2 = np.sum(seg * seg, axis=-1)
+        at = np.clip(np.sum(-di * seg, axis=-1) / np.maximum(length2, 1e-12), 0.0, 1.0)
+        off = np.linalg.norm(di + at[..., None] * seg, axis=-1)
+        length = np.sqrt(length2)
+        cost = (off + self.length_cost * length + np.where(length > self.max_length, np.inf, 0.0)
+                + np.where((length == 0) & (off > AT_CAPTURE), SINGLE_COST, 0.0))
+        best = np.argsort(cost, axis=1, kind="stable")[:, min(int(rank), cost.shape[1] - 1)]
+        rows = np.arange(len(s))
+        return Bracket(first=idx[rows, i[best]], second=idx[rows, j[best]], at=at[rows, best],
+                       length=length[rows, best], off=off[rows, best])
+
+
+@dataclass
+class PairFlows:
+    """Flows between two captures A and B both ways, with each side's forward-backward inconsistency (px)."""
+    ab: np.ndarray
+    ba: np.ndarray
+    err_a: np.ndarray
+    err_b: np.ndarray
+
+
+def pair_flows(a: np.ndarray, b: np.ndarray, method: str = "dis") -> PairFlows:
+    fab, fba = lflow.flow(a, b, method=method), lflow.flow(b, a, method=method)
+    err_a = np.linalg.norm(fab + lflow.warp(fba, fab), axis=-1)
+    err_b = np.linalg.norm(fba + lflow.warp(fab, fba), axis=-1)
+    return PairFlows(fab, fba, err_a, err_b)
+
+
+def blend(a: np.ndarray, b: np.ndarray, at: float, decoded: np.ndarray, flows: PairFlows | None,
+          tolerance: float) -> tuple[np.ndarray, dict[str, float]]:
+    """The frame at fraction `at` from capture a to capture b, the decoded frame arbitrating; and
+    its figures {"detail": share where the captures agree, "flow_error": share of the blend's weight
+    on pixels the flows could not follow}. flows None: a and b are one capture."""
+    if flows is None:
+        return np.asarray(a, dtype=np.float32), {"detail": 1.0, "flow_error": 0.0}
+    s = float(at)
+    to_a = -(1 - s) * s * flows.ab + s * s * flows.ba
+    to_b = (1 - s) ** 2 * flows.ab - s * (1 - s) * flows.ba
+    wa, wb = lflow.warp(a, to_a), lflow.warp(b, to_b)
+    va = np.exp(-(lflow.warp(flows.err_a[..., None], to_a) / CONSISTENCY) ** 2)
+    vb = np.exp(-(lflow.warp(flows.err_b[..., None], to_b) / CONSISTENCY) ** 2)
+    ka, kb = (1 - s) * va + 1e-6, s * vb + 1e-6
+    mixed = (ka * wa + kb * wb) / (ka + kb)
+    both = np.stack([wa, wb])
+    agree = np.exp(-(blur(np.abs(wa - wb).mean(axis=-1, keepdims=True), SPREAD) / tolerance) ** 2)
+    close = blur(np.abs(blur(both, MATCH) - decoded).mean(axis=-1, keepdims=True), SPREAD)
+    trust = np.stack([ka, kb]) / (close ** 2 + DELTA ** 2)
+    chosen = (trust * both).sum(axis=0) / trust.sum(axis=0)
+    out = agree * mixed + (1 - agree) * chosen
+    lost = float(np.mean(((1 - s) * (1 - va) + s * (1 - vb))))
+    return np.clip(out, 0.0, 1.0).astype(np.float32), {"detail": float(np.mean(agree)), "flow_error": lost}
+
+
+def synthesize(captures, bracket: Bracket, decoded: np.ndarray, *, tolerance: float, method: str = "dis",
+               pool: Executor | None = None) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """(N, H, W, C) frames from the bracketing captures, and per frame the figures of `blend` plus
+    "decoded_gap" (mean blurred difference to the decoded frame). `captures(indices)` gives float
+    images of bank indices. Each distinct pair's flows are estimated once (on `pool` if given)."""
+    decoded = np.asarray(decoded, dtype=np.float32)
+    n = len(decoded)
+    if n == 0:
+        return decoded, {"detail": np.zeros(0), "flow_error": np.zeros(0), "decoded_gap": np.zeros(0)}
+    if method not in PAIR_FLOWS:
+        raise ValueError(f"pair flow: {method!r} is not allowed; expected one of {list(PAIR_FLOWS)}")
+    single = (bracket.first == bracket.second) | (bracket.at <= 1e-6) | (bracket.at >= 1 - 1e-6)
+    one = np.where(bracket.at >= 1 - 1e-6, bracket.second, bracket.first)
+    keys = sorted({(int(i), int(j)) for i, j, x in zip(bracket.first, bracket.second, single) if not x})
+    used = sorted({k for key in keys for k in key} | {int(i) for i, x in zip(one, single) if x})
+    images = dict(zip(used, np.asarray(captures(np.asarray(used, dtype=np.int64)), dtype=np.float32)))
+
+    def estimate(key):
+        return key, pair_flows(images[key[0]], images[key[1]], method)
+
+    found = dict(pool.map(estimate, keys) if pool is not None and len(keys) > 1 else map(estimate, keys))
+    out, figures = [], []
+    for f in range(n):
+        if single[f]:
+            img, fig = blend(images[int(one[f])], None, 0.0, decoded[f], None, tolerance)
+        else:
+            key = (int(bracket.first[f]), int(bracket.second[f]))
+            img, fig = blend(images[key[0]], images[key[1]], float(bracket.at[f]), decoded[f], found[key], tolerance)
+        out.append(img)
+        figures.append(fig)
+    out = np.stack(out)
+    gap = np.abs(blur(out, SPREAD) - blur(decoded, SPREAD)).mean(axis=(1, 2, 3))
+    return out, {"detail": np.array([g["detail"] for g in figures]),
+                 "flow_error": np.array([g["flow_error"] for g in figures]), "decoded_gap": gap.astype(np.float64)}
