@@ -55,6 +55,14 @@ PAIR_FLOW = "dis-fine"  # models.flow.FINE_DIS: measured on the turntable scene,
 PAIR_RANKS = (1, 2)  # next-best brackets whose frames calibration adds (`calibration_frames`)
 
 
+def bank_only(engine: Engine) -> None:
+    """Refuse an engine that makes frames from the held-out captures too: their truth would be
+    among the captures a frame is made from (load it with ServingConfig(holdout_captures=False))."""
+    if engine.holdout_captures:
+        raise ValueError("held-out choices and calibration need an engine that makes frames from the bank's "
+                         "captures only: load it with ServingConfig(holdout_captures=False)")
+
+
 def bracketed(engine: Engine, holdout_params: np.ndarray, *, span: float | None = None, tolerance: float = 0.15,
               max_triplets: int = 400, seed: int = 0):
     """Triplets (s, m, t, a) with s, t bank samples and m a held-out one on their segment; m is
@@ -147,6 +155,7 @@ def choose_refine(engine: Engine, holdout_params: np.ndarray, holdout_images: np
     better of the two modes (mean SSIM, then PSNR) is on when it beats the decoded frames
     (`refine_wins`). Returns the choice with its held-out figures ("by_tolerance": the chosen
     candidates, "by_flow": every detail-transfer flow's, and "pair" under by_flow)."""
+    bank_only(engine)
     s, m, t, a = bracketed(engine, holdout_params, seed=seed)
     engine.refine = None
     if len(s) == 0:
@@ -191,6 +200,7 @@ def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_image
     """Signals (N, len(engine.scoring(refine)[0])), SSIM (N,) against the truth, and each row's
     kind, for the frames as a request with `refine` is served: routes of every span (`bracketed`),
     by both routes, half with settings ends and half with image ends, and fill frames."""
+    bank_only(engine)
     s, m, t, a = bracketed(engine, holdout_params, span=span, tolerance=tolerance, max_triplets=max_triplets,
                            seed=seed)
     codes, intended, truth, kinds = [], [], [], []
@@ -270,7 +280,8 @@ def fit_serving(manifest: Manifest, model: Autoencoder, arrays: dict[str, np.nda
     config), and how the confidence was fitted in its metrics."""
     stored = {k: (np.round(np.clip(v, 0, 1) * 255).astype(np.uint8) if "images" in k else v)
               for k, v in arrays.items()}
-    engine = Engine(Bundle(manifest, model, stored), ServingConfig(tube=TUBES[0], refine=False))
+    engine = Engine(Bundle(manifest, model, stored), ServingConfig(tube=TUBES[0], refine=False,
+                                                                    holdout_captures=False))
     tau, seed = manifest.train_config.confidence_tau, manifest.train_config.seed
     held = arrays["holdout_params"], arrays["holdout_images"]
     tube, by_tube = choose_tube(engine, *held, seed=seed)

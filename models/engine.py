@@ -32,6 +32,7 @@ from .manifest import LEGACY_SIGNALS
 from .nets import inference_copy
 from .refine import RefineConfig
 from .train import to_images, to_tensor
+from .triplets import normalised_coords
 
 # every signal the engine can compute; pair_* come with frames made from bracketing captures (models.pairs)
 SIGNALS = LEGACY_SIGNALS + ("detail", "pair_flow", "pair_span", "pair_off", "pair_gap")
@@ -69,6 +70,10 @@ class ServingConfig:
     tube: float | None = None      # local sample spacings around real samples a geodesic is pulled taut in
     refine: bool | None = None     # detail transfer from the nearest real images, on or off
     refine_threads: int = 2        # threads that refine one answer's frames
+    # frames made from the captures around them may use the held-out captures too: they are real
+    # captures of the subject. Training-time choices and calibration turn this off, so that the
+    # held-out truth is never among the captures a frame is made from
+    holdout_captures: bool = True
 
     def __post_init__(self) -> None:
         counts = {"chart_neighbours": 1, "attach": 1, "refine_threads": 1}
@@ -154,7 +159,11 @@ class Engine:
         self.chart = SettingsChart(bundle.params, bundle.codes, self.space, self.scale,
                                    neighbours=config.chart_neighbours, fallback=self._head_codes)
         self.planner = Planner(self.graph, self.space, bundle.params, self.scale, self.chart, attach=config.attach)
-        self.bracketer = lpairs.Bracketer(self.planner.clearance.bank, self.planner.clearance.box)
+        held = bundle.arrays.get("holdout_params")
+        self.holdout_captures = bool(config.holdout_captures and held is not None and len(held))
+        # the settings of every capture a frame may be made from: the bank's, then the held-out share's
+        self.capture_params = np.vstack([bundle.params, held]) if self.holdout_captures else bundle.params
+        self.bracketer = lpairs.Bracketer(*normalised_coords(self.capture_params, self.space, self.scale))
         nn, _ = self.graph.tree.query(self.graph.warped, k=2)
         self.spacing = float(np.median(nn[:, 1]))  # typical code distance between bank neighbours
         conf = self.manifest.confidence
@@ -215,8 +224,22 @@ class Engine:
         return out, {"detail": detail}
 
     def _captures(self, idx: np.ndarray) -> np.ndarray:
-        """Float images in [0, 1] of bank indices (any shape), read from the bank's pixels."""
-        return self.bank_pixels[idx].astype(np.float32) / 255.0
+        """Float images in [0, 1] of capture indices (any shape; `capture_params` order: the bank,
+        then the held-out share), read from the bundle's pixels."""
+        idx = np.asarray(idx, dtype=np.int64)
+        n = len(self.bundle.codes)
+        if not self.holdout_captures or idx.size == 0 or idx.max() < n:
+            return self.bank_pixels[idx].astype(np.float32) / 255.0
+        out = np.empty(idx.shape + self.bank_pixels.shape[1:], dtype=np.uint8)
+        bank = idx < n
+        out[bank] = self.bank_pixels[idx[bank]]
+        out[~bank] = self.holdout_pixels[idx[~bank] - n]
+        return out.astype(np.float32) / 255.0
+
+    @cached_property
+    def holdout_pixels(self) -> np.ndarray:
+        """The held-out share's uint8 images, memory-mapped like `bank_pixels`."""
+        return self.bundle.mapped_pixels("holdout_images")
 
     @cached_property
     def _refine_pool(self) -> ThreadPoolExecutor | None:

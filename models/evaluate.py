@@ -101,15 +101,15 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
     pacing = {"straight": [], "geodesic": []}
     conf = {"straight": ([], []), "geodesic": ([], []), "geodesic_decoded": ([], [])}
     rows, mapped, long_answer = [], [], None
-    bank_pixels = engine.bundle.mapped_pixels()  # uint8 (N, H, W, C); only the nearest captures are read
     for i, pair in enumerate(pairs):
         truth, t = pair["truth"], pair["t"]
         frame_bucket += [pair_bucket[i]] * len(t)
         want = np.array([engine.space.vector(p) for p in pair["truth_params"]])
-        near = nearest_captures(engine.space, engine.scale, engine.bundle.params, want)
+        # among the captures the engine makes frames from (the bank, and the held-out share unless turned off)
+        near = nearest_captures(engine.space, engine.scale, engine.capture_params, want)
         outs = {"dissolve": (1 - t)[:, None, None, None] * pair["start_image"] + t[:, None, None, None] * pair["end_image"],
                 "flow": lflow.tween(pair["start_image"], pair["end_image"], t),
-                "nearest": np.asarray(bank_pixels[near], dtype=np.float32) / 255.0,
+                "nearest": engine._captures(near),
                 "ceiling": engine.decode(engine.encode(truth))}
         for route in ("straight", "geodesic"):
             ans = engine.between(Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"]),

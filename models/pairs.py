@@ -46,7 +46,11 @@ MAX_LENGTH = 3.0    # spacings: longer pairs are not brackets (the flow between 
 AT_CAPTURE = 0.05   # spacings: a frame this close to a capture is that capture
 SINGLE_COST = 1.0   # what a single capture costs beyond its distance anywhere else
 NEIGHBOURS = 8      # nearest bank samples among which the bracket is chosen
-CONSISTENCY = 1.0   # px of forward-backward inconsistency at which visibility falls to 1/e
+# px of forward-backward inconsistency at which visibility falls to 1/e: only gross failures. Measured on
+# the turntable (captures 15 deg of yaw or 10 deg of camera height apart, 20 frames): SSIM 0.877 at
+# 1 px, 0.881 at 2 px, 0.887 at 4 px, 0.890 with no visibility at all; 4 px keeps the guard against
+# a flow that lost its way at a cost of 0.003
+CONSISTENCY = 4.0
 MATCH, SPREAD = 1.0, 1.5  # px: blur before comparing with the decoded frame, and pooling of differences
 DELTA = 0.02        # closeness to the decoded frame below which a capture is fully believed
 PAIR_FLOWS = lflow.METHODS

@@ -176,7 +176,7 @@ def skippable(small_bundle):
     from geotween.models.calibrate import calibrate_decoded
     from geotween.models.engine import Engine
 
-    engine = Engine.load(small_bundle, ServingConfig(refine=True))
+    engine = Engine.load(small_bundle, ServingConfig(refine=True, holdout_captures=False))
     before = engine.refine, engine.signal_names
     held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
     entry, report = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
@@ -204,7 +204,7 @@ def test_refine_false_serves_the_decoded_frames_scored_by_their_own_confidence(s
 def test_refine_false_is_refused_when_no_decoded_frame_confidence_was_fitted(small_bundle):
     from geotween.models.engine import Engine
 
-    engine = Engine.load(small_bundle, ServingConfig(refine=True))
+    engine = Engine.load(small_bundle, ServingConfig(refine=True, holdout_captures=False))
     engine.decoded_confidence = None
     if engine.confidence is None:
         pytest.skip("the small model has no confidence")

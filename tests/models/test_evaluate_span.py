@@ -127,11 +127,14 @@ def span_eval(small_engine, tmp_path_factory):
     return pairs, report, truth
 
 
-def test_the_nearest_method_scores_the_bank_image_at_the_closest_settings(span_eval, small_engine):
+def test_the_nearest_method_scores_the_capture_at_the_closest_settings(span_eval, small_engine):
     _, report, truth_dir = span_eval
     assert "nearest" in report["methods"] and all("nearest" in b["methods"] for b in report["by_span"].values()
                                                   if b["methods"])
-    bank, params = small_engine.bundle.images(), small_engine.bundle.params
+    # every capture the engine makes frames from: the bank, then the held-out share
+    bank = np.concatenate([small_engine.bundle.images(), small_engine.bundle.images("holdout_images")])
+    params = small_engine.capture_params
+    assert len(params) == len(bank) == len(small_engine.bundle.params) + len(small_engine.bundle.arrays["holdout_params"])
     psnr = []
     for pair in load_truth(truth_dir, small_engine.resolution, small_engine.channels):
         for frame, named in zip(pair["truth"], pair["truth_params"]):

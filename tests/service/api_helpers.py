@@ -77,7 +77,7 @@ def with_refine(src: Path, folder: Path, *, on: bool) -> dict:
     from geotween.models.calibrate import choose_refine
 
     shutil.copytree(src, folder, dirs_exist_ok=True)
-    engine = Engine.load(src, ServingConfig(refine=False))
+    engine = Engine.load(src, ServingConfig(refine=False, holdout_captures=False))
     holdout = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
     chosen = choose_refine(engine, engine.bundle.arrays["holdout_params"], holdout)
     # a 10-step model's frames are far from any real image: a wide tolerance lets them take real pixels

@@ -203,7 +203,7 @@ def skip_client(tmp_path_factory, small_bundle):
     from geotween.models.calibrate import calibrate_decoded
 
     reg = Registry.open(tmp_path_factory.mktemp("skip-registry"))
-    engine = Engine.load(small_bundle, ServingConfig(refine=True))
+    engine = Engine.load(small_bundle, ServingConfig(refine=True, holdout_captures=False))
     held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
     decoded, _ = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
     assert decoded is not None

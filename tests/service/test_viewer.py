@@ -112,7 +112,7 @@ def skippable_copy(src: Path, folder: Path) -> None:
     from geotween.models.engine import Engine, ServingConfig
 
     shutil.copytree(src, folder, dirs_exist_ok=True)
-    engine = Engine.load(src, ServingConfig(refine=True))
+    engine = Engine.load(src, ServingConfig(refine=True, holdout_captures=False))
     held = engine.bundle.pixels("holdout_images").astype(np.float32) / 255.0
     decoded, _ = calibrate_decoded(engine, engine.bundle.arrays["holdout_params"], held, tau=0.85)
     manifest = json.loads((folder / "manifest.json").read_text())
