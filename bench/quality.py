@@ -54,11 +54,23 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
         engine.route(codes[a], params[a], codes[b], params[b]).codes_at(np.linspace(0, 1, 18)[1:-1])
     route_ms = (time.perf_counter() - t) / len(ends) * 1e3
     imgs = engine.bundle.images()
-    times = []
-    for i in range(min(30, len(imgs) // 2)):
-        t = time.perf_counter()
-        engine.between(Endpoint(image=imgs[i]), Endpoint(image=imgs[-1 - i]), frames=16)
-        times.append((time.perf_counter() - t) * 1e3)
+    # a 16-frame answer with image ends, side by side in one run: as served with no flows kept from
+    # earlier answers ("cold": every frame's capture pair estimated afresh), as served again with the
+    # flows kept ("warm"), and decoded only (refine false: today's unrefined answer)
+    from geotween.models.engine import ServingConfig
+
+    cold = Engine.load(out / "bundle", ServingConfig(flow_cache_mb=0))
+    ends = [(Endpoint(image=imgs[i]), Endpoint(image=imgs[-1 - i])) for i in range(min(30, len(imgs) // 2))]
+    for a, b in ends:
+        engine.between(a, b, frames=16)
+    timed = {"cold": [], "warm": [], "decoded": []}
+    for a, b in ends:
+        for key, eng, refine in (("cold", cold, True), ("warm", engine, True), ("decoded", cold, False)):
+            t = time.perf_counter()
+            eng.between(a, b, frames=16, refine=refine)
+            timed[key].append((time.perf_counter() - t) * 1e3)
+    times = timed["cold"]
+    p50 = {k: float(np.median(v)) for k, v in timed.items()}
     cal = manifest.metrics.calibration
     summary = {"scene": scene_kind, "latent_dim": mcfg.latent_dim, "w_ssim": w_ssim, "resolution": resolution,
                "train_seconds_incl_calibration": round(train_wall, 1), "refine": manifest.refine.to_dict(),
@@ -69,7 +81,10 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
                "graph": {"k": engine.graph.k, "pruned": engine.graph.pruned, "components": engine.graph.components,
                          "bridges": engine.graph.bridges},
                "route_ms_mean": round(route_ms, 3), "answer16_ms_p50": round(float(np.median(times)), 2),
-               "answer16_ms_p99": round(float(np.percentile(times, 99)), 2), "report": report,
+               "answer16_ms_p99": round(float(np.percentile(times, 99)), 2),
+               "answer16_p50_ms": {k: round(v, 2) for k, v in p50.items()},
+               "answer16_ratio_to_decoded": {k: round(p50[k] / p50["decoded"], 2) for k in ("cold", "warm")},
+               "report": report,
                "bundle": str(out / "bundle")}
     (out / "quality.json").write_text(json.dumps(summary, indent=1))
     return summary

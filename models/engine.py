@@ -74,9 +74,10 @@ class ServingConfig:
     # captures of the subject. Training-time choices and calibration turn this off, so that the
     # held-out truth is never among the captures a frame is made from
     holdout_captures: bool = True
+    flow_cache_mb: int = 32        # flows between capture pairs kept across requests (0: none kept)
 
     def __post_init__(self) -> None:
-        counts = {"chart_neighbours": 1, "attach": 1, "refine_threads": 1}
+        counts = {"chart_neighbours": 1, "attach": 1, "refine_threads": 1, "flow_cache_mb": 0}
         if self.graph_k is not None:
             counts["graph_k"] = 1
         for name, lo in counts.items():
@@ -214,7 +215,7 @@ class Engine:
             u = (self.space.wrap(place) - self.space.lo) / self.scale
             bracket = self.bracketer(u, rank)
             out, fig = lpairs.synthesize(self._captures, bracket, images, tolerance=cfg.tolerance, method=cfg.flow,
-                                         pool=self._refine_pool)
+                                         pool=self._refine_pool, cache=self.flow_cache)
             return out, {"detail": fig["detail"], "pair_flow": fig["flow_error"], "pair_span": bracket.length,
                          "pair_off": bracket.off, "pair_gap": fig["decoded_gap"]}
         k = min(cfg.neighbours, len(self.bundle.codes))
@@ -240,6 +241,11 @@ class Engine:
     def holdout_pixels(self) -> np.ndarray:
         """The held-out share's uint8 images, memory-mapped like `bank_pixels`."""
         return self.bundle.mapped_pixels("holdout_images")
+
+    @cached_property
+    def flow_cache(self) -> lpairs.FlowCache:
+        """Flows between capture pairs, kept across requests (models.pairs.FlowCache)."""
+        return lpairs.FlowCache(self.config.flow_cache_mb << 20)
 
     @cached_property
     def _refine_pool(self) -> ThreadPoolExecutor | None:

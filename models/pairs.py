@@ -30,6 +30,8 @@ confidence signals of a model that serves these frames.
 """
 from __future__ import annotations
 
+import threading
+from collections import OrderedDict
 from concurrent.futures import Executor
 from dataclasses import dataclass
 
@@ -106,50 +108,103 @@ class Bracketer:
 
 @dataclass
 class PairFlows:
-    """Flows between two captures A and B both ways, with each side's forward-backward inconsistency (px)."""
+    """Flows between two captures A and B both ways, and each side's visibility: exp(-(e / CONSISTENCY)^2)
+    of its forward-backward inconsistency e (px), (H, W, 1)."""
     ab: np.ndarray
     ba: np.ndarray
-    err_a: np.ndarray
-    err_b: np.ndarray
+    seen_a: np.ndarray
+    seen_b: np.ndarray
+
+
+class FlowCache:
+    """The flows of the most recently used capture pairs, up to `budget` bytes (least recently used
+    dropped first). Captures never change, so a pair's flows are estimated once for as long as they
+    stay: neighbouring requests (a batch filling one region, frames of consecutive answers) reuse
+    them. Safe to share between threads."""
+
+    def __init__(self, budget: int = 32 << 20):
+        self.budget, self.used = int(budget), 0
+        self._items: OrderedDict = OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, key):
+        with self._lock:
+            found = self._items.get(key)
+            if found is not None:
+                self._items.move_to_end(key)
+            return found
+
+    def put(self, key, flows: "PairFlows") -> None:
+        size = sum(x.nbytes for x in (flows.ab, flows.ba, flows.seen_a, flows.seen_b))
+        with self._lock:
+            if key in self._items or size > self.budget:
+                return
+            self._items[key] = flows
+            self.used += size
+            while self.used > self.budget:
+                _, old = self._items.popitem(last=False)
+                self.used -= sum(x.nbytes for x in (old.ab, old.ba, old.seen_a, old.seen_b))
+
+    def __len__(self) -> int:
+        return len(self._items)
 
 
 def pair_flows(a: np.ndarray, b: np.ndarray, method: str = "dis") -> PairFlows:
     fab, fba = lflow.flow(a, b, method=method), lflow.flow(b, a, method=method)
-    err_a = np.linalg.norm(fab + lflow.warp(fba, fab), axis=-1)
-    err_b = np.linalg.norm(fba + lflow.warp(fab, fba), axis=-1)
-    return PairFlows(fab, fba, err_a, err_b)
+    err_a = np.linalg.norm(fab + lflow.warp(fba, fab), axis=-1, keepdims=True)
+    err_b = np.linalg.norm(fba + lflow.warp(fab, fba), axis=-1, keepdims=True)
+    return PairFlows(fab, fba, np.exp(-(err_a / CONSISTENCY) ** 2), np.exp(-(err_b / CONSISTENCY) ** 2))
+
+
+def moved(a: np.ndarray, b: np.ndarray, at: float, flows: PairFlows) -> tuple[np.ndarray, ...]:
+    """Captures a and b moved to the frame at fraction `at` between them, with their visibility
+    there: (W_A, v_A, W_B, v_B), (H, W, C) and (H, W, 1)."""
+    s, c = float(at), a.shape[-1]
+    to_a = -(1 - s) * s * flows.ab + s * s * flows.ba
+    to_b = (1 - s) ** 2 * flows.ab - s * (1 - s) * flows.ba
+    # each capture moved together with its visibility (one warp for both)
+    wa, va = np.split(lflow.warp(np.concatenate([a, flows.seen_a], axis=-1), to_a), [c], axis=-1)
+    wb, vb = np.split(lflow.warp(np.concatenate([b, flows.seen_b], axis=-1), to_b), [c], axis=-1)
+    return wa, va, wb, vb
+
+
+def combine(wa: np.ndarray, va: np.ndarray, wb: np.ndarray, vb: np.ndarray, at: np.ndarray, decoded: np.ndarray,
+            tolerance: float) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """The frames (N, H, W, C) from the moved captures of `moved` stacked over N frames at fractions
+    `at` (N,), the decoded frames arbitrating; and per frame {"detail": share where the captures
+    agree, "flow_error": share of the blend's weight on pixels the flows could not follow}. Whole
+    batches at once: per-frame array calls cost more than their arithmetic at these sizes."""
+    s = np.asarray(at, dtype=np.float32).reshape(-1, 1, 1, 1)
+    ka, kb = (1 - s) * va + 1e-6, s * vb + 1e-6
+    mixed = (ka * wa + kb * wb) / (ka + kb)
+    agree = np.exp(-np.square(blur(np.abs(wa - wb).mean(axis=-1, keepdims=True), SPREAD) / tolerance))
+    close = blur(np.abs(blur(np.concatenate([wa, wb]), MATCH) - np.concatenate([decoded, decoded]))
+                 .mean(axis=-1, keepdims=True), SPREAD)
+    ta, tb = ka / (np.square(close[:len(wa)]) + DELTA ** 2), kb / (np.square(close[len(wa):]) + DELTA ** 2)
+    out = agree * mixed + (1 - agree) * ((ta * wa + tb * wb) / (ta + tb))
+    lost = ((1 - s) * (1 - va) + s * (1 - vb)).mean(axis=(1, 2, 3))
+    return (np.clip(out, 0.0, 1.0).astype(np.float32),
+            {"detail": agree.mean(axis=(1, 2, 3)).astype(np.float64), "flow_error": lost.astype(np.float64)})
 
 
 def blend(a: np.ndarray, b: np.ndarray, at: float, decoded: np.ndarray, flows: PairFlows | None,
           tolerance: float) -> tuple[np.ndarray, dict[str, float]]:
-    """The frame at fraction `at` from capture a to capture b, the decoded frame arbitrating; and
-    its figures {"detail": share where the captures agree, "flow_error": share of the blend's weight
-    on pixels the flows could not follow}. flows None: a and b are one capture."""
+    """One frame at fraction `at` from capture a to capture b (`moved`, then `combine`), and its
+    figures. flows None: a and b are one capture, and the frame is that capture."""
     if flows is None:
         return np.asarray(a, dtype=np.float32), {"detail": 1.0, "flow_error": 0.0}
-    s = float(at)
-    to_a = -(1 - s) * s * flows.ab + s * s * flows.ba
-    to_b = (1 - s) ** 2 * flows.ab - s * (1 - s) * flows.ba
-    wa, wb = lflow.warp(a, to_a), lflow.warp(b, to_b)
-    va = np.exp(-(lflow.warp(flows.err_a[..., None], to_a) / CONSISTENCY) ** 2)
-    vb = np.exp(-(lflow.warp(flows.err_b[..., None], to_b) / CONSISTENCY) ** 2)
-    ka, kb = (1 - s) * va + 1e-6, s * vb + 1e-6
-    mixed = (ka * wa + kb * wb) / (ka + kb)
-    both = np.stack([wa, wb])
-    agree = np.exp(-(blur(np.abs(wa - wb).mean(axis=-1, keepdims=True), SPREAD) / tolerance) ** 2)
-    close = blur(np.abs(blur(both, MATCH) - decoded).mean(axis=-1, keepdims=True), SPREAD)
-    trust = np.stack([ka, kb]) / (close ** 2 + DELTA ** 2)
-    chosen = (trust * both).sum(axis=0) / trust.sum(axis=0)
-    out = agree * mixed + (1 - agree) * chosen
-    lost = float(np.mean(((1 - s) * (1 - va) + s * (1 - vb))))
-    return np.clip(out, 0.0, 1.0).astype(np.float32), {"detail": float(np.mean(agree)), "flow_error": lost}
+    parts = [x[None] for x in moved(np.asarray(a, np.float32), np.asarray(b, np.float32), at, flows)]
+    out, fig = combine(*parts, np.array([at]), np.asarray(decoded, np.float32)[None], tolerance)
+    return out[0], {k: float(v[0]) for k, v in fig.items()}
 
 
 def synthesize(captures, bracket: Bracket, decoded: np.ndarray, *, tolerance: float, method: str = "dis",
-               pool: Executor | None = None) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+               pool: Executor | None = None, cache: FlowCache | None = None
+               ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
     """(N, H, W, C) frames from the bracketing captures, and per frame the figures of `blend` plus
     "decoded_gap" (mean blurred difference to the decoded frame). `captures(indices)` gives float
-    images of bank indices. Each distinct pair's flows are estimated once (on `pool` if given)."""
+    images of capture indices. Each distinct pair's flows are estimated once, or taken from
+    `cache`; flows and blends run on `pool` if given."""
     decoded = np.asarray(decoded, dtype=np.float32)
     n = len(decoded)
     if n == 0:
@@ -163,19 +218,28 @@ def synthesize(captures, bracket: Bracket, decoded: np.ndarray, *, tolerance: fl
     images = dict(zip(used, np.asarray(captures(np.asarray(used, dtype=np.int64)), dtype=np.float32)))
 
     def estimate(key):
-        return key, pair_flows(images[key[0]], images[key[1]], method)
+        got = None if cache is None else cache.get((method,) + key)
+        if got is None:
+            got = pair_flows(images[key[0]], images[key[1]], method)
+            if cache is not None:
+                cache.put((method,) + key, got)
+        return key, got
 
-    found = dict(pool.map(estimate, keys) if pool is not None and len(keys) > 1 else map(estimate, keys))
-    out, figures = [], []
-    for f in range(n):
-        if single[f]:
-            img, fig = blend(images[int(one[f])], None, 0.0, decoded[f], None, tolerance)
-        else:
-            key = (int(bracket.first[f]), int(bracket.second[f]))
-            img, fig = blend(images[key[0]], images[key[1]], float(bracket.at[f]), decoded[f], found[key], tolerance)
-        out.append(img)
-        figures.append(fig)
-    out = np.stack(out)
+    def run(fn, items):
+        return list(pool.map(fn, items) if pool is not None and len(items) > 1 else map(fn, items))
+
+    found = dict(run(estimate, keys))
+
+    def made(f: int):
+        if single[f]:  # the capture itself: nothing to move, every pixel seen
+            img = images[int(one[f])]
+            return img, np.ones(img.shape[:-1] + (1,), np.float32), img, np.ones(img.shape[:-1] + (1,), np.float32)
+        key = (int(bracket.first[f]), int(bracket.second[f]))
+        return moved(images[key[0]], images[key[1]], float(bracket.at[f]), found[key])
+
+    parts = [np.stack(x) for x in zip(*run(made, list(range(n))))]
+    at = np.where(single, 0.0, bracket.at)
+    out, figures = combine(*parts, at, decoded, tolerance)
+    out[single] = parts[0][single]  # exactly the capture, not a blend of it with itself
     gap = np.abs(blur(out, SPREAD) - blur(decoded, SPREAD)).mean(axis=(1, 2, 3))
-    return out, {"detail": np.array([g["detail"] for g in figures]),
-                 "flow_error": np.array([g["flow_error"] for g in figures]), "decoded_gap": gap.astype(np.float64)}
+    return out, {**figures, "decoded_gap": gap.astype(np.float64)}
