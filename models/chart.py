@@ -17,6 +17,7 @@ from .params import ParamSpace
 from .triplets import normalised_coords
 
 EXACT = 1e-9  # spacing units: a settings point this close to a sample takes its code as it is
+INVERSE_REACH = 2.0  # spacings: a code read back farther than this from its nearest sample is off the bank
 
 
 def local_affine(offsets: np.ndarray, values: np.ndarray, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -74,3 +75,42 @@ class SettingsChart:
         if np.any(lost):
             out[lost] = self.fallback(p[lost])
         return out
+
+    def settings_of(self, codes: np.ndarray, fallback: Callable[[np.ndarray], np.ndarray], *,
+                    reach: float = INVERSE_REACH) -> np.ndarray:
+        """Codes (N, d) -> settings (N, P), the chart run backwards: over the `neighbours` bank codes
+        nearest to each code, the weighted affine fit z(x) = c + B x of their codes on their settings
+        (offsets x from the nearest sample's, in spacings; weights 1 / (code distance + a tenth of
+        the nearest's)^2), solved for the x whose chart value lies nearest the code. A code at a
+        sample's own gives its settings exactly. `fallback` (the code-to-settings head) answers
+        where the fit is undetermined or its answer lies more than `reach` spacings from the nearest
+        sample (the code is far from the bank)."""
+        z = np.atleast_2d(np.asarray(codes, dtype=np.float64))
+        dist, idx = self._code_tree.query(z, k=self.neighbours)
+        dist, idx = dist.reshape(len(z), -1), idx.reshape(len(z), -1)
+        out = np.empty((len(z), self.params.shape[1]))
+        lost = np.zeros(len(z), dtype=bool)
+        for n in range(len(z)):
+            base = self.params[idx[n, 0]]
+            if dist[n, 0] < EXACT:
+                out[n] = base
+                continue
+            x = self.space.delta(base, self.params[idx[n]]) / self.scale              # (k, P)
+            root = 1.0 / (dist[n] + 0.1 * dist[n, 0])                                  # sqrt of the weights
+            design = np.hstack([np.ones((len(x), 1)), x]) * root[:, None]
+            coef, _, rank, _ = np.linalg.lstsq(design, self.codes[idx[n]] * root[:, None], rcond=None)
+            if rank < design.shape[1]:
+                lost[n] = True
+                continue
+            step, _, rank, _ = np.linalg.lstsq(coef[1:].T, z[n] - coef[0], rcond=None)
+            lost[n] = rank < len(step) or not np.linalg.norm(step) <= reach
+            out[n] = self.space.wrap(base + step * self.scale)
+        if np.any(lost):
+            out[lost] = fallback(z[lost])
+        return out
+
+    @property
+    def _code_tree(self) -> cKDTree:
+        if not hasattr(self, "_codes_kd"):
+            self._codes_kd = cKDTree(self.codes)
+        return self._codes_kd

@@ -304,10 +304,14 @@ class Engine:
         return self.model.to_code(f).double().numpy()
 
     def end_code(self, end: Endpoint) -> tuple[np.ndarray, np.ndarray]:
-        """Code and settings (P,) of one end; settings of an image end are read by the head."""
+        """Code and settings (P,) of one end; settings of an image end are read by the chart run
+        backwards (SettingsChart.settings_of)."""
         if end.image is not None:
             z = self.encode(np.asarray(end.image)[None])[0]
-            return z, self.settings_of(z[None])[0]
+            # read by the chart over the bank codes around it (exact for a captured image), the head
+            # where the code lies off the bank: measured on the turntable from scattered settings,
+            # the head alone misread ends by about 3 sample spacings (bench/RESULTS.md)
+            return z, self.chart.settings_of(z[None], self.settings_of)[0]
         p = self.space.vector(end.params)
         return self.code_of_settings(p[None])[0], p
 

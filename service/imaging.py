@@ -18,6 +18,9 @@ from ..models.scene import image_to_array
 from .errors import InvalidImage, TooLarge
 
 FORMATS = ("PNG", "JPEG")
+# fewer pixels a side than this hold no picture of a subject worth routing from (a model works at
+# 16 px and up): such an end is refused, not stretched into a blur that would still get an answer
+MIN_IMAGE_SIDE = 8
 _PNG_FAST = [cv2.IMWRITE_PNG_COMPRESSION, 1, cv2.IMWRITE_PNG_STRATEGY, cv2.IMWRITE_PNG_STRATEGY_HUFFMAN_ONLY]
 _DATA_URL = re.compile(r"^data:image/(png|jpeg|jpg);base64,", re.IGNORECASE)
 
@@ -35,7 +38,8 @@ def decode_base64(text: str, *, field: str) -> bytes:
 
 
 def open_image(data: bytes, *, field: str, max_image_pixels: int = 16_000_000) -> Image.Image:
-    """Bytes of a PNG or JPEG to a decoded PIL image; refuses more than max_image_pixels pixels."""
+    """Bytes of a PNG or JPEG to a decoded PIL image; refuses more than max_image_pixels pixels,
+    and fewer than MIN_IMAGE_SIDE on a side."""
     try:
         img = Image.open(io.BytesIO(data), formats=FORMATS)
     except Image.DecompressionBombError:
@@ -45,6 +49,10 @@ def open_image(data: bytes, *, field: str, max_image_pixels: int = 16_000_000) -
     except (UnidentifiedImageError, OSError, ValueError, SyntaxError) as exc:
         raise InvalidImage(f"{field}: not a readable PNG or JPEG image ({exc})", field=field) from None
     width, height = img.size
+    if min(width, height) < MIN_IMAGE_SIDE:
+        img.close()
+        raise InvalidImage(f"{field}: the image is {width}x{height} pixels, too small to use; allowed at least "
+                           f"{MIN_IMAGE_SIDE} pixels on each side", field=field, code="image_too_small")
     if width * height > max_image_pixels:
         img.close()
         raise TooLarge(f"{field}: the image is {width}x{height} = {width * height} pixels, above "

@@ -40,3 +40,27 @@ def test_collinear_neighbours_are_flagged():
 def test_bad_shapes_are_refused(shape):
     with pytest.raises(ValueError, match="shapes"):
         local_affine(np.zeros(shape), np.zeros((3, 4, 2)), np.ones((3, 4)))
+
+
+def test_the_chart_run_backwards_reads_settings_from_codes_of_an_affine_bank():
+    # a bank whose codes are an exact affine function of its settings (a worked example: the
+    # inverse of z = c + B p is p = B^+ (z - c), numpy.linalg.pinv), with a periodic first axis
+    from geotween.models.chart import SettingsChart
+    from geotween.models.params import Parameter, ParamSpace
+
+    space = ParamSpace([Parameter("turn", 0.0, 360.0, periodic=True), Parameter("height", 0.0, 50.0)])
+    turn, height = np.meshgrid(np.arange(0.0, 90.0, 15.0), np.arange(0.0, 50.0, 10.0), indexing="ij")
+    params = np.stack([turn.ravel(), height.ravel()], axis=-1)
+    c, b = np.array([0.5, -1.0, 2.0]), np.array([[0.02, 0.01, -0.03], [-0.05, 0.04, 0.01]])
+    chart = SettingsChart(params, c + params @ b, space, np.array([15.0, 10.0]), fallback=lambda p: p)
+
+    def head(z):  # what the fallback would say: far off on purpose, so a test of it can tell
+        return np.full((len(z), 2), -999.0)
+
+    want = np.array([[22.0, 13.0], [40.0, 31.0], [15.0, 20.0]])  # the last is a sample's own settings
+    got = chart.settings_of(c + want @ b, head)
+    assert np.allclose(got, want, atol=1e-9)
+    assert np.allclose((c + want @ b - c) @ np.linalg.pinv(b), want)  # the reference inverse agrees
+    # a code far off the bank (10 spacings beyond it) is left to the fallback
+    far = chart.settings_of(c + np.array([[75.0, 150.0]]) @ b, head)
+    assert np.allclose(far, -999.0)

@@ -47,6 +47,12 @@ BAD = [
      dict(json=between_body(end={"image": b64(b"hello, world")})), 422, "invalid_image", "end.image"),
     ("truncated png", "post", "/v1/models/tile/between",
      dict(json=between_body(start={"image": b64(truncated_png())})), 422, "invalid_image", "start.image"),
+    ("1x1 image", "post", "/v1/models/tile/between",
+     dict(json=between_body(start={"image": b64(png(np.zeros((1, 1), np.uint8)))})), 422, "image_too_small",
+     "start.image"),
+    ("7 px on one side", "post", "/v1/models/tile/between",
+     dict(json=between_body(end={"image": b64(png(np.zeros((7, 40), np.uint8)))})), 422, "image_too_small",
+     "end.image"),
     ("over max_image_pixels (header only)", "post", "/v1/models/tile/between",
      dict(json=between_body(start={"image": b64(claimed_png(1200, 1000))})), 413, "image_too_large", "start.image"),
     ("decompression bomb 20000x20000", "post", "/v1/models/tile/between",
@@ -112,6 +118,14 @@ BAD = [
     ("no such endpoint", "get", "/v2/models", {}, 404, "not_found", None),
     ("method not allowed", "put", "/v1/models", {}, 405, "method_not_allowed", None),
 ]
+
+
+def test_an_image_too_small_is_refused_naming_its_size_and_the_smallest_allowed(client):
+    r = client.post("/v1/models/tile/between", json=between_body(start={"image": b64(png(np.zeros((7, 12), np.uint8)))}))
+    assert r.status_code == 422 and "12x7" in r.json()["error"]["message"] and "8" in r.json()["error"]["message"]
+    # 8 px on a side is enough: resized to the model's size like any other end
+    r = client.post("/v1/models/tile/between", json=between_body(start={"image": b64(png(np.zeros((8, 8), np.uint8)))}))
+    assert r.status_code == 200, r.text
 
 
 def test_bad_inputs_get_the_error_shape_and_leave_the_registry_alone(client, registry):
