@@ -92,7 +92,7 @@ class SettingsChart:
         lost = np.zeros(len(z), dtype=bool)
         for n in range(len(z)):
             base = self.params[idx[n, 0]]
-            if dist[n, 0] < EXACT:
+            if dist[n, 0] <= 1e-5 * dist[n, -1]:  # the code of a sample (to float rounding of a re-encode)
                 out[n] = base
                 continue
             x = self.space.delta(base, self.params[idx[n]]) / self.scale              # (k, P)
@@ -104,7 +104,10 @@ class SettingsChart:
                 continue
             step, _, rank, _ = np.linalg.lstsq(coef[1:].T, z[n] - coef[0], rcond=None)
             lost[n] = rank < len(step) or not np.linalg.norm(step) <= reach
-            out[n] = self.space.wrap(base + step * self.scale)
+            # periodic settings wrap; the others stay in their range (a code at the edge of the bank
+            # reads back a hair outside it)
+            out[n] = np.clip(self.space.wrap(base + step * self.scale), self.space.lo,
+                             np.where(self.space.periodic, np.inf, self.space.hi))
         if np.any(lost):
             out[lost] = fallback(z[lost])
         return out

@@ -29,6 +29,7 @@ from .chart import SettingsChart
 from .confidence import ConfidenceModel
 from .geodesic import ROUTES, Planner, Route
 from .manifest import LEGACY_SIGNALS
+from .metrics import ssim_batch
 from .nets import inference_copy
 from .refine import RefineConfig
 from .train import to_images, to_tensor
@@ -51,6 +52,10 @@ REFINED_SIGNALS = FITTED_SIGNALS + ("detail",)
 # bracket is and how far the frame lies off it (sample spacings), and how far the frame lies from
 # the decoded one
 PAIR_SIGNALS = REFINED_SIGNALS + ("pair_flow", "pair_span", "pair_off", "pair_gap")
+
+
+# how an image end is checked against the captures at the settings read for it (`Engine.end_placed`)
+PLACING = RefineConfig(mode="pair", flow="dis-fine", tolerance=0.1)
 
 
 def fitted_signals(refine: RefineConfig | None) -> tuple[str, ...]:
@@ -135,6 +140,7 @@ class Answer(FrameCounts):
     path_nodes: np.ndarray     # bank indices the geodesic passed through (empty for straight)
     ends: np.ndarray | None = None  # (2, d) codes of the start and the end
     tau: float | None = None   # the SSIM threshold the frames' confidence speaks about (None: no confidence)
+    ends_placed: bool = True   # False: an image end could not be placed, and no frame was judged
 
 
 class Engine:
@@ -397,9 +403,28 @@ class Engine:
         intended = self.space.lerp(ps, pe, t) if along is None else along
         # a geodesic's frames are made where the route puts them; the straight route's where its codes lie
         frames = self.frames_at(codes, t, intended, min_confidence, refine, place=along)
+        placed = self.end_placed(start, zs, ps) and self.end_placed(end, ze, pe)
+        if not placed:  # the frames' settings rest on ends it could not place: nobody judged them
+            for f in frames:
+                f.confidence, f.accepted = None, False
         return Answer(route=route, frames=frames,
                       start_params=self.space.named(ps), end_params=self.space.named(pe),
-                      codes=codes, path_nodes=way.nodes, ends=np.stack([zs, ze]), tau=self.tau)
+                      codes=codes, path_nodes=way.nodes, ends=np.stack([zs, ze]), tau=self.tau,
+                      ends_placed=placed)
+
+    def end_placed(self, end: Endpoint, code: np.ndarray, settings: np.ndarray) -> bool:
+        """Whether an end's settings were read right, as far as the model can tell: a settings end
+        always; an image end when the frame made from the captures around the settings it read
+        (PLACING, whatever this model serves) matches the image itself to SSIM >= tau (a captured
+        image read back to its own settings is that capture, exactly).
+        The confidence is fitted on frames whose ends are placed right (calibration's image ends
+        are bank captures); an image the model cannot place leaves every frame unjudged. A model
+        without a confidence judges nothing anyway."""
+        if end.image is None or self.tau is None:
+            return True
+        code, settings = np.asarray(code)[None], np.asarray(settings)[None]
+        made, _ = self.refined(code, self.decode(code), PLACING, place=settings)
+        return bool(ssim_batch(made, np.asarray(end.image, dtype=np.float32)[None])[0] >= self.tau)
 
     def fill(self, targets: Sequence[Mapping[str, float]], min_confidence: float = 0.5,
              refine: bool = True) -> list[Frame]:

@@ -99,6 +99,7 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
     methods = METHODS + (("geodesic_decoded",) if engine.refine is not None else ())
     got = {m: {"psnr": [], "ssim": []} for m in methods}
     pacing = {"straight": [], "geodesic": []}
+    unplaced = {"straight": 0, "geodesic": 0}
     conf = {"straight": ([], []), "geodesic": ([], []), "geodesic_decoded": ([], [])}
     rows, mapped, long_answer = [], [], None
     for i, pair in enumerate(pairs):
@@ -118,7 +119,10 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
             shown = np.array([engine.space.vector(f.params) for f in ans.frames])
             pacing[route] += list(engine.space.distance(shown, want, engine.scale))
             if engine.confidence is not None:
-                conf[route][0].extend(f.confidence for f in ans.frames)
+                # a frame left unjudged (an image end the model could not place) is never accepted: it
+                # counts as confidence 0
+                conf[route][0].extend(0.0 if f.confidence is None else f.confidence for f in ans.frames)
+                unplaced[route] += 0 if ans.ends_placed else len(ans.frames)
             if route == "geodesic" and len(mapped) < sheet_pairs:
                 mapped.append(ans)
             if route == "geodesic" and i == longest:
@@ -151,6 +155,8 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
         prob, faithful = np.asarray(conf[route][0], dtype=float), np.asarray(conf[route][1], dtype=float)
         if len(prob):
             report["methods"][route]["confidence"] = confidence_summary(prob, faithful, min_confidence)
+            if route in unplaced:
+                report["methods"][route]["confidence"]["unjudged"] = unplaced[route]
     geo, ceil = report["methods"]["geodesic"], report["methods"]["ceiling"]
     report["geodesic_below_ceiling_db"] = round(ceil["psnr"] - geo["psnr"], 3)
     scores = {m: (np.concatenate(got[m]["psnr"]), np.concatenate(got[m]["ssim"])) for m in methods}

@@ -58,6 +58,7 @@ class Answer(FrameCounts):
     start_code: list[float] | None = None
     end_code: list[float] | None = None
     tau: float | None = None                       # the SSIM threshold the confidences speak about
+    ends_placed: bool | None = None                # between only: False when an image end could not be placed
 
 
 def _floats(values) -> list[float]:
@@ -80,7 +81,8 @@ def between_answer(ans, model: str, version: int) -> Answer:
     return Answer(kind="between", model=model, version=version, frames=frames, route=ans.route,
                   start_params=dict(ans.start_params), end_params=dict(ans.end_params),
                   start_code=None if ends is None else _floats(ends[0]),
-                  end_code=None if ends is None else _floats(ends[1]), tau=getattr(ans, "tau", None))
+                  end_code=None if ends is None else _floats(ends[1]), tau=getattr(ans, "tau", None),
+                  ends_placed=bool(getattr(ans, "ends_placed", True)))
 
 
 def fill_frames(frames: Sequence, targets: Sequence[dict], *, offset: int = 0) -> list[EncodedFrame]:
@@ -114,7 +116,8 @@ def to_wire(answer: Answer, files: Sequence[str | None] | None = None, *, latent
             "accepted": answer.accepted, "rejected": answer.rejected}
     if answer.kind == "between":
         body.update(route=answer.route, start_params=answer.start_params, end_params=answer.end_params,
-                    start_code=answer.start_code, end_code=answer.end_code)
+                    start_code=answer.start_code, end_code=answer.end_code,
+                    ends_placed=True if answer.ends_placed is None else answer.ends_placed)
         if latent_map is not None:
             body["latent_map"] = latent_map
     return _BODY[answer.kind, files is not None].model_validate(body)

@@ -18,8 +18,9 @@ DETAIL = ("share of the frame's pixels, 0 to 1, carried over from real training 
           "agree with the decoded frame) or, on a model whose refine.config.mode is 'pair', the share where the two "
           "captures around the frame, each moved to it along the optical flow between them, agree. The frame is "
           "still synthesized, not captured. null when the model does not refine (chosen per model at training time)")
-CONFIDENCE = ("calibrated probability that SSIM vs the true view >= tau; null when the model has no "
-              "confidence, and such a frame is never accepted")
+CONFIDENCE = ("calibrated probability that SSIM vs the true view >= tau; null when the frame was not judged (the "
+              "model has no confidence, or an image end could not be placed: ends_placed false), and such a frame "
+              "is never accepted")
 TAU = ("the SSIM against the true view that the frames' confidence speaks about (chosen per model at training, "
        "train --tau); null: the model has no confidence and rejects every frame")
 FILE_PATTERN = r"^(frame|target)_[0-9]{4,}\.png$"  # between frames, fill frames; 1-based index, 4 digits at least
@@ -148,6 +149,10 @@ class _BetweenHead(_Out):
     end_params: dict[str, float]
     start_code: list[float] | None = Field(None, description="latent code of the start")
     end_code: list[float] | None = Field(None, description="latent code of the end")
+    ends_placed: bool = Field(True, description="false: an image end could not be placed among the captures "
+                                                "(the frame the model makes at the settings it read for it does not "
+                                                "match it to SSIM tau), so the route rests on settings nobody can "
+                                                "vouch for: every frame's confidence is null and none is accepted")
     synthesized: Literal[True] = True
     notice: str = NOTICE
 

@@ -64,3 +64,18 @@ def test_the_chart_run_backwards_reads_settings_from_codes_of_an_affine_bank():
     # a code far off the bank (10 spacings beyond it) is left to the fallback
     far = chart.settings_of(c + np.array([[75.0, 150.0]]) @ b, head)
     assert np.allclose(far, -999.0)
+
+
+def test_settings_read_back_stay_in_the_range_of_a_non_periodic_setting():
+    from geotween.models.chart import SettingsChart
+    from geotween.models.params import Parameter, ParamSpace
+
+    space = ParamSpace([Parameter("pan", 0.0, 1.0), Parameter("zoom", 0.0, 1.0)])
+    pan, zoom = np.meshgrid(np.linspace(0, 1, 5), np.linspace(0, 1, 5), indexing="ij")
+    params = np.stack([pan.ravel(), zoom.ravel()], axis=-1)
+    chart = SettingsChart(params, params @ np.array([[1.0, 0.0, 0.3], [0.0, 1.0, -0.2]]), space,
+                          np.array([0.25, 0.25]), fallback=lambda p: p)
+    # codes a little beyond the bank's edge (zoom -0.01, pan 1.02) read back on the edge, not past it
+    got = chart.settings_of(np.array([[0.5, -0.01, 0.152], [1.02, 0.5, 0.206]]), lambda z: np.zeros((len(z), 2)))
+    assert np.all(got >= 0.0) and np.all(got <= 1.0)
+    assert got[0, 1] == 0.0 and got[1, 0] == 1.0

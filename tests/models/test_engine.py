@@ -243,3 +243,23 @@ def test_training_a_refining_model_stores_both_confidences(small_scene, tmp_path
     assert engine.refine is not None and engine.decoded_confidence is not None
     fast = engine.between(P(30, 30), P(150, 60), frames=3, refine=False)
     assert all(f.detail is None and f.confidence is not None for f in fast.frames)
+
+
+def test_an_image_end_the_model_cannot_place_leaves_every_frame_unjudged(small_engine):
+    bank = small_engine.bundle.images()
+    params = small_engine.bundle.params
+    # a captured image is placed: it reads back to its own settings, where the capture itself is made
+    ans = small_engine.between(Endpoint(image=bank[0]), Endpoint(image=bank[5]), frames=3)
+    assert ans.ends_placed
+    assert float(small_engine.space.distance(small_engine.space.vector(ans.start_params), params[0])) < 1e-6
+    assert all(f.confidence is not None for f in ans.frames)
+    # an image of something else (the capture turned upside down) matches nothing made at the
+    # settings read for it: the route rests on an end nobody can vouch for
+    odd = np.ascontiguousarray(bank[5][::-1, ::-1])
+    assert not small_engine.end_placed(Endpoint(image=odd), small_engine.encode(odd[None])[0],
+                                       small_engine.settings_of(small_engine.encode(odd[None]))[0])
+    ans = small_engine.between(Endpoint(image=bank[0]), Endpoint(image=odd), frames=3, min_confidence=0.0)
+    assert not ans.ends_placed and ans.accepted == 0
+    assert all(f.confidence is None and not f.accepted for f in ans.frames)
+    # settings ends are always placed
+    assert small_engine.between(P(30, 40), P(90, 40), frames=2).ends_placed
