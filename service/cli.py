@@ -68,6 +68,11 @@ def _warn_calibration(entry) -> None:
         print(f"geotween: warning: {entry.name}@{entry.version}: {warning}", file=sys.stderr)
 
 
+UNPLACED = ("geotween: warning: an image end could not be placed among the captures (the frame made at the "
+            "settings read for it does not match it), so no frame was judged and every one is rejected; give "
+            "that end as settings, or as a captured image")
+
+
 def refine_line(manifest) -> str:
     """Whether a model refines its frames from real training images (detail transfer, or frames made
     from the two captures around each), and the held-out
@@ -189,6 +194,8 @@ def cmd_between(args) -> int:
     (out / "manifest.json").write_text(manifest_json(to_wire(wire, files, latent_map=LATENT_MAP)))
     print(f"{entry.name}@{entry.version} {answer.route}: {answer.accepted} accepted, {answer.rejected} rejected "
           f"-> {out}")
+    if answer.ends_placed is False:
+        print(UNPLACED, file=sys.stderr)
     return EXIT_REJECTED if args.strict and answer.rejected else EXIT_OK
 
 

@@ -231,7 +231,9 @@ async function makeFrames(event) {
     show(0);
     say(answer.frames.length + " frames on the " + answer.route + " route: " + answer.accepted + " accepted, " +
       answer.rejected + " rejected (min confidence " + fmt(body.min_confidence, 2) + tauText(answer.tau) + "). " +
-      "All are synthesized, not captured.");
+      "All are synthesized, not captured." + (answer.ends_placed === false
+        ? " An image end could not be placed among the captures, so no frame was judged: all are rejected."
+        : ""));
   } catch (err) {
     problem(err.message);
     say("No frames.");

@@ -123,6 +123,25 @@ def test_between_strict_exits_3_when_frames_are_rejected(small_registry, tmp_pat
     assert sorted(p.name for p in out.iterdir()) == ["latent_map.png", "manifest.json"]
 
 
+def test_between_warns_when_an_image_end_cannot_be_placed(small_registry, small_bundle, tmp_path, capsys):
+    import numpy as np
+    from PIL import Image
+
+    from geotween.models.bundle import load_bundle
+
+    # a captured view turned upside down: no capture matches it at any settings read for it
+    bank = load_bundle(small_bundle).pixels()
+    odd = tmp_path / "odd.png"
+    Image.fromarray(np.ascontiguousarray(bank[3][::-1, ::-1, 0])).save(odd)
+    out = tmp_path / "unplaced"
+    assert main(["--registry", small_registry, "between", "small", "lamp_azimuth=30,lamp_elevation=30", str(odd),
+                 "--frames", "3", "--out", str(out), "--keep-rejected", "--strict"]) == 3
+    assert "could not be placed" in capsys.readouterr().err
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["ends_placed"] is False and manifest["accepted"] == 0
+    assert all(f["confidence"] is None for f in manifest["frames"])
+
+
 @pytest.mark.parametrize("start, message", [
     ("lamp_azimuth=30", "missing parameter 'lamp_elevation'"),
     ("lamp_azimuth=30,lamp_elevation=40,zoom=1", "unknown parameter 'zoom'"),
