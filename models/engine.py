@@ -22,6 +22,7 @@ import torch
 
 from . import graph as lgraph
 from . import pairs as lpairs
+from . import placing as lplacing
 from . import refine as lrefine
 from . import route as lroute
 from .bundle import Bundle, load_bundle
@@ -29,7 +30,6 @@ from .chart import SettingsChart
 from .confidence import ConfidenceModel
 from .geodesic import ROUTES, Planner, Route
 from .manifest import LEGACY_SIGNALS
-from .metrics import ssim_batch
 from .nets import inference_copy
 from .refine import RefineConfig
 from .train import to_images, to_tensor
@@ -52,10 +52,6 @@ REFINED_SIGNALS = FITTED_SIGNALS + ("detail",)
 # bracket is and how far the frame lies off it (sample spacings), and how far the frame lies from
 # the decoded one
 PAIR_SIGNALS = REFINED_SIGNALS + ("pair_flow", "pair_span", "pair_off", "pair_gap")
-
-
-# how an image end is checked against the captures at the settings read for it (`Engine.end_placed`)
-PLACING = RefineConfig(mode="pair", flow="dis-fine", tolerance=0.1)
 
 
 def fitted_signals(refine: RefineConfig | None) -> tuple[str, ...]:
@@ -396,6 +392,7 @@ class Engine:
             raise ValueError(f"min_confidence: {min_confidence!r} is outside [0, 1]")
         zs, ps = self.end_code(start)
         ze, pe = self.end_code(end)
+        (ps, placed_start), (pe, placed_end) = self.place_end(start, zs, ps), self.place_end(end, ze, pe)
         way = self.route(zs, ps, ze, pe, route)
         t = lroute.interior_t(frames)
         codes = way.codes_at(t)
@@ -403,7 +400,7 @@ class Engine:
         intended = self.space.lerp(ps, pe, t) if along is None else along
         # a geodesic's frames are made where the route puts them; the straight route's where its codes lie
         frames = self.frames_at(codes, t, intended, min_confidence, refine, place=along)
-        placed = self.end_placed(start, zs, ps) and self.end_placed(end, ze, pe)
+        placed = placed_start and placed_end
         if not placed:  # the frames' settings rest on ends it could not place: nobody judged them
             for f in frames:
                 f.confidence, f.accepted = None, False
@@ -412,19 +409,17 @@ class Engine:
                       codes=codes, path_nodes=way.nodes, ends=np.stack([zs, ze]), tau=self.tau,
                       ends_placed=placed)
 
-    def end_placed(self, end: Endpoint, code: np.ndarray, settings: np.ndarray) -> bool:
-        """Whether an end's settings were read right, as far as the model can tell: a settings end
-        always; an image end when the frame made from the captures around the settings it read
-        (PLACING, whatever this model serves) matches the image itself to SSIM >= tau (a captured
-        image read back to its own settings is that capture, exactly).
-        The confidence is fitted on frames whose ends are placed right (calibration's image ends
-        are bank captures); an image the model cannot place leaves every frame unjudged. A model
-        without a confidence judges nothing anyway."""
+    def place_end(self, end: Endpoint, code: np.ndarray, settings: np.ndarray) -> tuple[np.ndarray, bool]:
+        """(settings, placed) of an end: a settings end as given, always placed; an image end
+        placed among the captures (models.placing: the frame made from them at its settings must
+        give the image back to SSIM >= tau; searched when the first read does not, and then placed
+        only where the search finds a capture it equals). The confidence
+        is fitted on frames whose ends are placed right (calibration's image ends are captures); an
+        image the model cannot place leaves every frame unjudged. A model without a confidence
+        judges nothing anyway, and reads image ends without searching."""
         if end.image is None or self.tau is None:
-            return True
-        code, settings = np.asarray(code)[None], np.asarray(settings)[None]
-        made, _ = self.refined(code, self.decode(code), PLACING, place=settings)
-        return bool(ssim_batch(made, np.asarray(end.image, dtype=np.float32)[None])[0] >= self.tau)
+            return settings, True
+        return lplacing.place(self, end.image, code, settings, self.tau)
 
     def fill(self, targets: Sequence[Mapping[str, float]], min_confidence: float = 0.5,
              refine: bool = True) -> list[Frame]:

@@ -256,10 +256,25 @@ def test_an_image_end_the_model_cannot_place_leaves_every_frame_unjudged(small_e
     # an image of something else (the capture turned upside down) matches nothing made at the
     # settings read for it: the route rests on an end nobody can vouch for
     odd = np.ascontiguousarray(bank[5][::-1, ::-1])
-    assert not small_engine.end_placed(Endpoint(image=odd), small_engine.encode(odd[None])[0],
-                                       small_engine.settings_of(small_engine.encode(odd[None]))[0])
+    code = small_engine.encode(odd[None])[0]
+    _, placed = small_engine.place_end(Endpoint(image=odd), code, small_engine.settings_of(code[None])[0])
+    assert not placed
     ans = small_engine.between(Endpoint(image=bank[0]), Endpoint(image=odd), frames=3, min_confidence=0.0)
     assert not ans.ends_placed and ans.accepted == 0
     assert all(f.confidence is None and not f.accepted for f in ans.frames)
     # settings ends are always placed
     assert small_engine.between(P(30, 40), P(90, 40), frames=2).ends_placed
+
+
+def test_a_misread_image_end_is_searched_back_to_its_settings(small_engine):
+    from geotween.models import placing
+
+    # a captured image with a wrong first read (two spacings off on the first setting): the search
+    # over the captures nearest its code finds its own settings again, where it is given back exactly
+    bank, params = small_engine.bundle.images(), small_engine.bundle.params
+    code = small_engine.bundle.codes[7]
+    wrong = small_engine.space.wrap(params[7] + np.array([2.0, 0.0]) * small_engine.scale)
+    assert placing.agreement(small_engine, bank[7], wrong[None])[0] < small_engine.tau  # the first read fails
+    found, placed = placing.place(small_engine, bank[7], code, wrong, tau=small_engine.tau)
+    assert placed and float(small_engine.space.distance(found, params[7], small_engine.scale)) < 0.05
+    assert placing.agreement(small_engine, bank[7], found[None])[0] >= placing.FOUND
