@@ -102,7 +102,12 @@ class Bracketer:
                 + np.where((length == 0) & (off > AT_CAPTURE), SINGLE_COST, 0.0))
         best = np.argsort(cost, axis=1, kind="stable")[:, min(int(rank), cost.shape[1] - 1)]
         rows = np.arange(len(s))
-        return Bracket(first=idx[rows, i[best]], second=idx[rows, j[best]], at=at[rows, best],
+        first, second, at = idx[rows, i[best]], idx[rows, j[best]], at[rows, best]
+        # each pair named lower index first, so frames between the same two captures share their flows
+        # whichever way a route passes them
+        swap = first > second
+        first, second = np.where(swap, second, first), np.where(swap, first, second)
+        return Bracket(first=first, second=second, at=np.where(swap, 1.0 - at, at),
                        length=length[rows, best], off=off[rows, best])
 
 

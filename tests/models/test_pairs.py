@@ -157,3 +157,11 @@ def test_synthesize_estimates_each_pair_once_and_uses_captures_whole_at_their_se
     assert set(fig) == {"detail", "flow_error", "decoded_gap"} and np.all(fig["decoded_gap"] >= 0)
     with pytest.raises(ValueError, match="pair flow"):
         lpairs.synthesize(captures, br, caps[[0, 0, 1, 2]], tolerance=0.05, method="none")
+
+
+def test_a_pair_is_named_lower_index_first_whichever_way_it_is_passed():
+    u, box = grid_bank()
+    br = lpairs.Bracketer(u, box)
+    a, b = br([[2.25, 3.0]]), br([[2.75, 3.0]])  # nearer to one end, then to the other
+    assert (int(a.first[0]), int(a.second[0])) == (int(b.first[0]), int(b.second[0]))
+    assert a.first[0] < a.second[0] and a.at[0] + b.at[0] == pytest.approx(1.0)
