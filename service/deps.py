@@ -14,7 +14,7 @@ from .cache import ModelCache
 from .errors import Unauthorized, Unavailable
 from .jobs import InferencePool, JobManager
 from .metrics import Metrics
-from .registry import Registry, RegistryError, check_name
+from .registry import NAME_RULE, Registry, RegistryError, check_name
 from .settings import Settings
 
 
@@ -111,7 +111,12 @@ async def require_api_key(services: ServicesDep, offered: OfferedKey) -> str:
 ApiKeyDep = Annotated[str, Depends(require_api_key)]
 
 
-async def valid_name(name: Annotated[str, PathParam(description="model name, e.g. 'relief-tile'")]) -> str:
+# the name rule, documented in the contract; `check_name` enforces it (with its own error code)
+NAME_PATTERN = rf"^(?!.*\.\.){NAME_RULE}$"
+
+
+async def valid_name(name: Annotated[str, PathParam(description="model name, e.g. 'relief-tile'",
+                                                    json_schema_extra={"pattern": NAME_PATTERN})]) -> str:
     return check_name(name)
 
 

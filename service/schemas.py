@@ -34,6 +34,7 @@ REFINE_REQUEST = ("detail transfer on a model that refines (see GET /v1/models/{
 ROUTES = ("geodesic", "straight")
 JOB_STATES = ("queued", "running", "done", "failed", "cancelled")
 RESOLUTIONS = (16, 32, 64, 128, 256)
+MAX_VERSION = 2**31 - 1  # a version number the registry's index can hold (larger ones are refused with 422, not 500)
 
 _EXAMPLE_PARAMS_A = {"lamp_azimuth": 30.0, "lamp_elevation": 40.0}
 _EXAMPLE_PARAMS_B = {"lamp_azimuth": 120.0, "lamp_elevation": 60.0}
@@ -80,7 +81,7 @@ class BetweenRequest(_Request):
     frames: int = Field(8, ge=1, description="in-between frames, ends excluded (at most max_frames)")
     route: Literal["geodesic", "straight"] = "geodesic"
     min_confidence: float = Field(0.5, ge=0.0, le=1.0, description="frames below it are marked rejected")
-    version: int | None = Field(None, ge=1, description="model version (default: the latest)")
+    version: int | None = Field(None, ge=1, le=MAX_VERSION, description="model version (default: the latest)")
     refine: bool = Field(True, description=REFINE_REQUEST)
 
     model_config = ConfigDict(json_schema_extra={"examples": [
@@ -175,7 +176,7 @@ class FillRequest(_Request):
     targets: list[dict[str, float]] = Field(min_length=1, description="settings of each missing view "
                                                                       "(at most max_fill_targets)")
     min_confidence: float = Field(0.5, ge=0.0, le=1.0)
-    version: int | None = Field(None, ge=1)
+    version: int | None = Field(None, ge=1, le=MAX_VERSION)
     as_job: bool = Field(False, description="run as a job even when small enough to answer at once")
     refine: bool = Field(True, description=REFINE_REQUEST)
 
@@ -227,7 +228,7 @@ class FillManifestOut(_FillHead):
 class MapRequest(_Request):
     codes: list[list[float]] = Field(min_length=1, description="latent codes to place on the map, each of the "
                                                                 "model's latent_dim (at most max_map_codes)")
-    version: int | None = Field(None, ge=1, description="model version (default: the latest)")
+    version: int | None = Field(None, ge=1, le=MAX_VERSION, description="model version (default: the latest)")
 
     model_config = ConfigDict(json_schema_extra={"examples": [{"codes": [[0.12, -0.4, 0.9], [0.3, -0.2, 0.7]]}]})
 

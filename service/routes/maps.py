@@ -19,7 +19,7 @@ from ..cache import ModelCache
 from ..deps import ModelName, ServicesDep, note
 from ..errors import BadInput
 from ..registry import ModelVersion
-from ..schemas import LatentMapOut, MapPointsOut, MapRequest
+from ..schemas import MAX_VERSION, LatentMapOut, MapPointsOut, MapRequest
 from .common import errors
 
 router = APIRouter(prefix="/v1", tags=["models"])
@@ -50,7 +50,7 @@ def _place(cache: ModelCache, entry: ModelVersion, codes: list[list[float]]) -> 
 @router.get("/models/{name}/map", operation_id="latent_map", response_model=LatentMapOut,
             responses=errors(404, 422, 503), summary="The bank's latent codes on a 2-D map (PCA of the bank)")
 async def latent_map(name: ModelName, services: ServicesDep, request: Request,
-                     version: Annotated[int | None, Query(ge=1, description="model version (default: latest)")]
+                     version: Annotated[int | None, Query(ge=1, le=MAX_VERSION, description="model version (default: latest)")]
                      = None) -> LatentMapOut:
     entry = await run_in_threadpool(services.cache.lookup, name, version)
     body = await services.pool.run(_bank_map, services.cache, entry)

@@ -17,6 +17,7 @@ from ..errors import BadInput
 from ..imaging import decode_base64, open_image, to_model_array
 from ..registry import ModelVersion
 from ..schemas import (
+    MAX_VERSION,
     REFINE_REQUEST,
     BetweenManifestOut,
     BetweenOut,
@@ -115,7 +116,7 @@ def list_models(services: ServicesDep) -> ModelListOut:
             responses=errors(404, 422, 503),
             summary="Versions, parameter spec, metrics, calibration, detail transfer")
 def get_model(name: ModelName, services: ServicesDep,
-              version: Annotated[int | None, Query(ge=1, description="version to describe (default: latest)")]
+              version: Annotated[int | None, Query(ge=1, le=MAX_VERSION, description="version to describe (default: latest)")]
               = None) -> ModelOut:
     registry = services.registry()
     versions = registry.versions(name)
@@ -131,7 +132,7 @@ def get_model(name: ModelName, services: ServicesDep,
 
 @router.delete("/models/{name}/{version}", operation_id="delete_model_version", response_model=DeletedOut,
                responses=errors(401, 404, 422, 503), summary="Delete one version (API key)")
-def delete_model_version(key: ApiKeyDep, name: ModelName, version: Annotated[int, PathParam(ge=1)],
+def delete_model_version(key: ApiKeyDep, name: ModelName, version: Annotated[int, PathParam(ge=1, le=MAX_VERSION)],
                          services: ServicesDep, request: Request) -> DeletedOut:
     # the key comes first in the signature, so an unauthenticated caller learns nothing else
     services.registry().delete(name, version)
@@ -165,7 +166,7 @@ async def between_upload(
         frames: Annotated[int, Form(ge=1, description="in-between frames (at most max_frames)")] = 8,
         route: Annotated[Literal["geodesic", "straight"], Form()] = "geodesic",
         min_confidence: Annotated[float, Form(ge=0.0, le=1.0, allow_inf_nan=False)] = 0.5,
-        version: Annotated[int | None, Form(ge=1)] = None,
+        version: Annotated[int | None, Form(ge=1, le=MAX_VERSION)] = None,
         refine: Annotated[bool, Form(description=REFINE_REQUEST)] = True):
     _frame_limit(services, frames)
     files = []

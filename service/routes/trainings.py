@@ -35,7 +35,7 @@ def _scene_dir(services: Services, raw: str) -> Path:
 
 @router.post("/trainings", operation_id="start_training", status_code=202, response_model=JobOut,
              responses={202: {"description": "a training job was queued; poll Location"},
-                        **errors(401, 404, 422, 503)},
+                        **errors(400, 401, 404, 413, 422, 503)},
              summary="Train and register a model from a scene folder on the server (API key)")
 def start_training(key: ApiKeyDep, body: TrainingRequest, services: ServicesDep, request: Request):
     s = services.settings

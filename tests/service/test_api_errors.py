@@ -47,6 +47,8 @@ BAD = [
      dict(json=between_body(end={"image": b64(b"hello, world")})), 422, "invalid_image", "end.image"),
     ("truncated png", "post", "/v1/models/tile/between",
      dict(json=between_body(start={"image": b64(truncated_png())})), 422, "invalid_image", "start.image"),
+    ("version beyond the index", "delete", "/v1/models/tile/" + "9" * 28, dict(headers={"X-API-Key": KEY}), 422,
+     "invalid", "version"),
     ("1x1 image", "post", "/v1/models/tile/between",
      dict(json=between_body(start={"image": b64(png(np.zeros((1, 1), np.uint8)))})), 422, "image_too_small",
      "start.image"),
