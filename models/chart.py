@@ -8,6 +8,7 @@ loop of per-point solves.
 """
 from __future__ import annotations
 
+from functools import cached_property
 from typing import Callable
 
 import numpy as np
@@ -86,7 +87,7 @@ class SettingsChart:
         where the fit is undetermined or its answer lies more than `reach` spacings from the nearest
         sample (the code is far from the bank)."""
         z = np.atleast_2d(np.asarray(codes, dtype=np.float64))
-        dist, idx = self._code_tree.query(z, k=self.neighbours)
+        dist, idx = self.code_tree.query(z, k=self.neighbours)
         dist, idx = dist.reshape(len(z), -1), idx.reshape(len(z), -1)
         out = np.empty((len(z), self.params.shape[1]))
         lost = np.zeros(len(z), dtype=bool)
@@ -112,8 +113,7 @@ class SettingsChart:
             out[lost] = fallback(z[lost])
         return out
 
-    @property
-    def _code_tree(self) -> cKDTree:
-        if not hasattr(self, "_codes_kd"):
-            self._codes_kd = cKDTree(self.codes)
-        return self._codes_kd
+    @cached_property
+    def code_tree(self) -> cKDTree:
+        """A kd-tree of the bank codes (for reading settings back from codes), built on first use."""
+        return cKDTree(self.codes)

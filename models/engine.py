@@ -216,17 +216,17 @@ class Engine:
             place = self.settings_of(codes) if place is None else np.asarray(place, dtype=np.float64)
             u = (self.space.wrap(place) - self.space.lo) / self.scale
             bracket = self.bracketer(u, rank)
-            out, fig = lpairs.synthesize(self._captures, bracket, images, tolerance=cfg.tolerance, method=cfg.flow,
+            out, fig = lpairs.synthesize(self.captures, bracket, images, tolerance=cfg.tolerance, method=cfg.flow,
                                          pool=self._refine_pool, cache=self.flow_cache)
             return out, {"detail": fig["detail"], "pair_flow": fig["flow_error"], "pair_span": bracket.length,
                          "pair_off": bracket.off, "pair_gap": fig["decoded_gap"]}
         k = min(cfg.neighbours, len(self.bundle.codes))
         _, idx = self.graph.tree.query(self.graph.warp(codes), k=k)
-        refs = self._captures(np.asarray(idx).reshape(len(codes), k))
+        refs = self.captures(np.asarray(idx).reshape(len(codes), k))
         out, detail = lrefine.refine(images, refs, cfg, pool=self._refine_pool)
         return out, {"detail": detail}
 
-    def _captures(self, idx: np.ndarray) -> np.ndarray:
+    def captures(self, idx: np.ndarray) -> np.ndarray:
         """Float images in [0, 1] of capture indices (any shape; `capture_params` order: the bank,
         then the held-out share), read from the bundle's pixels."""
         idx = np.asarray(idx, dtype=np.int64)

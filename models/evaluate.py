@@ -110,7 +110,7 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
         near = nearest_captures(engine.space, engine.scale, engine.capture_params, want)
         outs = {"dissolve": (1 - t)[:, None, None, None] * pair["start_image"] + t[:, None, None, None] * pair["end_image"],
                 "flow": lflow.tween(pair["start_image"], pair["end_image"], t),
-                "nearest": engine._captures(near),
+                "nearest": engine.captures(near),
                 "ceiling": engine.decode(engine.encode(truth))}
         for route in ("straight", "geodesic"):
             ans = engine.between(Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"]),

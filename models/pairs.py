@@ -60,7 +60,7 @@ PAIR_FLOWS = lflow.METHODS
 
 @dataclass
 class Bracket:
-    """Per frame: the captures `first` and `second` (bank indices; equal for a single capture),
+    """Per frame: the captures `first` and `second` (capture indices, the lower first; equal for a single capture),
     the fraction `at` from first to second, the bracket's `length` and the frame's distance `off`
     from it (both in sample spacings)."""
     first: np.ndarray
@@ -120,6 +120,10 @@ class PairFlows:
     seen_a: np.ndarray
     seen_b: np.ndarray
 
+    @property
+    def nbytes(self) -> int:
+        return self.ab.nbytes + self.ba.nbytes + self.seen_a.nbytes + self.seen_b.nbytes
+
 
 class FlowCache:
     """The flows of the most recently used capture pairs, up to `budget` bytes (least recently used
@@ -140,7 +144,7 @@ class FlowCache:
             return found
 
     def put(self, key, flows: "PairFlows") -> None:
-        size = sum(x.nbytes for x in (flows.ab, flows.ba, flows.seen_a, flows.seen_b))
+        size = flows.nbytes
         with self._lock:
             if key in self._items or size > self.budget:
                 return
@@ -148,7 +152,7 @@ class FlowCache:
             self.used += size
             while self.used > self.budget:
                 _, old = self._items.popitem(last=False)
-                self.used -= sum(x.nbytes for x in (old.ab, old.ba, old.seen_a, old.seen_b))
+                self.used -= old.nbytes
 
     def __len__(self) -> int:
         return len(self._items)

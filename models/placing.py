@@ -40,7 +40,7 @@ def _is_capture(engine, image: np.ndarray, settings: np.ndarray) -> bool:
     near = np.nonzero(engine.space.distance(engine.capture_params, settings, engine.scale) < 1e-6)[0]
     if len(near) == 0:
         return False
-    return bool(np.max(np.abs(engine._captures(near[:1])[0] - np.asarray(image, np.float32))) <= 0.5 / 255.0)
+    return bool(np.max(np.abs(engine.captures(near[:1])[0] - np.asarray(image, np.float32))) <= 0.5 / 255.0)
 
 
 def _inside(space, p: np.ndarray) -> np.ndarray:
@@ -58,7 +58,7 @@ def place(engine, image: np.ndarray, code: np.ndarray, settings: np.ndarray, tau
     score = float(agreement(engine, image, best[None])[0])
     if score >= tau:
         return best, True
-    _, idx = engine.chart._code_tree.query(np.asarray(code)[None], k=min(CANDIDATES, len(engine.chart.codes)))
+    _, idx = engine.chart.code_tree.query(np.asarray(code)[None], k=min(CANDIDATES, len(engine.chart.codes)))
     tried = engine.chart.params[np.atleast_1d(np.asarray(idx).ravel())]
     scores = agreement(engine, image, tried)
     if scores.max() > score:
