@@ -11,7 +11,7 @@ from .bundle import save_bundle
 from .manifest import Manifest, Metrics
 from .nets import ModelConfig
 from .scene import Scene
-from .train import TrainConfig, TrainResult, encode, train
+from .train import Checkpoint, TrainConfig, TrainResult, encode, train
 
 
 def bank_arrays(result: TrainResult, scene: Scene) -> dict[str, np.ndarray]:
@@ -28,10 +28,12 @@ def bank_arrays(result: TrainResult, scene: Scene) -> dict[str, np.ndarray]:
 
 def train_bundle(scene: Scene, out: str | Path, *, name: str, model_config: ModelConfig | None = None,
                  train_config: TrainConfig | None = None, progress: TextIO | None = sys.stderr,
-                 on_step: Callable[[int, int], None] | None = None, calibrate: bool = True) -> Manifest:
+                 on_step: Callable[[int, int], None] | None = None, calibrate: bool = True,
+                 checkpoint: Checkpoint | None = None) -> Manifest:
     """Train on `scene`; on the held-out share choose the route's tube and detail transfer and
     calibrate confidence; write a complete bundle to `out`; returns its manifest."""
-    result = train(scene, model_config, train_config, progress=progress, on_step=on_step)
+    result = train(scene, model_config, train_config, progress=progress, on_step=on_step,
+                   checkpoint=checkpoint)
     arrays = bank_arrays(result, scene)
     manifest = Manifest(name=name, model_config=result.model_config, train_config=result.train_config,
                         space=scene.space, scale=tuple(float(s) for s in result.scale),

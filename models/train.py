@@ -8,9 +8,11 @@ calibrating confidence.
 from __future__ import annotations
 
 import math
+import os
 import sys
 import time
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Callable, TextIO
 
 import numpy as np
@@ -119,9 +121,30 @@ def default_model_config(scene: Scene, **overrides) -> ModelConfig:
     return ModelConfig(**kw)
 
 
+@dataclass(frozen=True)
+class Checkpoint:
+    """Where a training saves its state every `every` steps, and resumes from when the file exists:
+    weights, optimiser, step, elapsed seconds and both random generators, so a resumed training
+    takes the same steps as one that was never stopped."""
+    path: Path
+    every: int = 200
+
+    def load(self) -> dict | None:
+        if not self.path.is_file():
+            return None
+        return torch.load(self.path, weights_only=False)  # our own file, written by save() below
+
+    def save(self, state: dict) -> None:
+        tmp = self.path.with_name(self.path.name + ".tmp")
+        torch.save(state, tmp)
+        os.replace(tmp, self.path)  # a kill mid-write leaves the previous checkpoint whole
+
+
 def train(scene: Scene, model_config: ModelConfig | None = None, train_config: TrainConfig | None = None,
-          *, progress: TextIO | None = sys.stderr, on_step: Callable[[int, int], None] | None = None) -> TrainResult:
-    """Train on `scene`; `on_step(done, total)` lets a job report progress (and cancel by raising)."""
+          *, progress: TextIO | None = sys.stderr, on_step: Callable[[int, int], None] | None = None,
+          checkpoint: Checkpoint | None = None) -> TrainResult:
+    """Train on `scene`; `on_step(done, total)` lets a job report progress (and cancel by raising);
+    with a `checkpoint` the training resumes where its last saved state left it."""
     cfg = train_config or TrainConfig()
     mcfg = model_config or default_model_config(scene)
     space = scene.space
@@ -143,6 +166,14 @@ def train(scene: Scene, model_config: ModelConfig | None = None, train_config: T
     history: list[dict] = []
     t0 = time.perf_counter()
     step = 0
+    saved = checkpoint.load() if checkpoint is not None else None
+    if saved is not None:
+        model.load_state_dict(saved["model"])
+        opt.load_state_dict(saved["optimiser"])
+        rng.bit_generator.state = saved["numpy_rng"]
+        torch.set_rng_state(saved["torch_rng"])
+        step, history = saved["step"], saved["history"]
+        t0 -= saved["elapsed"]
     while step < total:
         # progress is the larger of steps done and budget used, so a wall-clock budget compresses
         # the whole schedule (warm-up and decay) instead of cutting it off
@@ -162,6 +193,10 @@ def train(scene: Scene, model_config: ModelConfig | None = None, train_config: T
             on_step(round(share * total), total)
         if over:
             break
+        if checkpoint is not None and step % checkpoint.every == 0 and step < total:
+            checkpoint.save({"model": model.state_dict(), "optimiser": opt.state_dict(), "step": step,
+                             "numpy_rng": rng.bit_generator.state, "torch_rng": torch.get_rng_state(),
+                             "history": history, "elapsed": time.perf_counter() - t0})
     wall = time.perf_counter() - t0
     model.eval()
     metrics = evaluate_fit(model, scene, train_idx, hold_idx, trip)

@@ -16,11 +16,15 @@ are named by `frame_file` everywhere (frame_0001.png, target_0001.png).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Literal, Sequence
+from typing import TYPE_CHECKING, Literal, Mapping, Sequence
 
 from ..models.engine import FrameCounts
 from .imaging import encode_png, png_base64
 from .schemas import BetweenManifestOut, BetweenOut, FillManifestOut, FillOut
+
+if TYPE_CHECKING:
+    from .cache import ModelCache
+    from .registry import ModelVersion
 
 Kind = Literal["between", "fill"]
 _PREFIX = {"between": "frame", "fill": "target"}
@@ -89,6 +93,13 @@ def fill_frames(frames: Sequence, targets: Sequence[dict], *, offset: int = 0) -
     """Engine frames answering targets[offset:offset + len(frames)] (targets are that slice)."""
     return [_frame(f, offset + k + 1, {"target": {str(n): float(v) for n, v in targets[k].items()}})
             for k, f in enumerate(frames)]
+
+
+def fill_chunk(cache: "ModelCache", entry: "ModelVersion", targets: Sequence[Mapping[str, float]],
+               min_confidence: float, offset: int = 0, refine: bool = True) -> list[EncodedFrame]:
+    """Frames for targets[offset:offset+len], PNG-encoded; runs on the inference pool."""
+    engine = cache.engine(entry)
+    return fill_frames(engine.fill(targets, min_confidence=min_confidence, refine=refine), targets, offset=offset)
 
 
 def fill_answer(frames: list[EncodedFrame], model: str, version: int, tau: float | None = None) -> Answer:

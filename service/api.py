@@ -7,8 +7,8 @@ Middleware, outermost first:
   counting bytes while a chunked body streams in.
 
 Models are loaded on first use and cached per name@version; the registry is opened in the
-lifespan (or on first use, while it cannot be opened /readyz answers 503). Jobs are in memory
-only and are lost on restart.
+lifespan (or on first use, while it cannot be opened /readyz answers 503). Jobs are kept in the
+jobs' database (service/durable.py) and outlive restarts.
 """
 from __future__ import annotations
 
@@ -22,6 +22,7 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from starlette.concurrency import run_in_threadpool
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.middleware import Middleware
 
@@ -215,7 +216,8 @@ async def _on_domain(request: Request, exc: Exception) -> JSONResponse:
     info = describe(exc)
     if info.status >= 500 and not isinstance(exc, (ServiceError, RegistryError)):
         error_log.exception("error in %s %s", request.method, request.url.path, exc_info=exc)
-    return _json_error(info)
+    retry_after = getattr(exc, "retry_after", None)  # refused for load: when to come back (RFC 9110, 10.2.3)
+    return _json_error(info, headers={"Retry-After": str(retry_after)} if retry_after else None)
 
 
 # -- the app ------------------------------------------------------------------------------------
@@ -227,7 +229,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
-        services = Services(settings, app.state.metrics)
+        # off the event loop: the job runtime's start-up talks to its database synchronously
+        services = await run_in_threadpool(Services, settings, app.state.metrics)
         app.state.services = services
         try:
             services.registry()
@@ -237,21 +240,23 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             yield
         finally:
             app.state.services = None
-            services.close()
+            await run_in_threadpool(services.close)
 
     app = FastAPI(
         title="geotween",
         version="1",
         summary="In-between frames along latent geodesics, each with a calibrated confidence.",
         description="Frames are synthesized by a learned model, not captured. Every error is "
-                    '`{"error": {"code", "message", "field"}}`. Jobs are kept in memory only and '
-                    "are lost when the service restarts.",
+                    '`{"error": {"code", "message", "field"}}`. Jobs are kept in a database and '
+                    "outlive restarts: queued jobs run, running ones resume, finished ones keep "
+                    "their result for the retention time.",
         lifespan=lifespan,
         middleware=[Middleware(Observe), Middleware(BodyLimit, max_body_bytes=settings.max_body_bytes)],
     )
     app.state.settings = settings
     app.state.metrics = Metrics()
     app.state.services = None
+    app.state.draining = False  # set by the server on SIGTERM (service.drain); /readyz then answers 503
     app.add_exception_handler(RequestValidationError, _on_validation)
     app.add_exception_handler(StarletteHTTPException, _on_http)
     for kind in (ServiceError, RegistryError, ValueError, LookupError):

@@ -161,7 +161,9 @@ def cmd_fill(args) -> int:
     except ClientError as exc:
         bar.close()
         print(f"geotween: {args.url}: {exc}", file=sys.stderr)
-        return EXIT_BAD_INPUT if exc.status is not None and 400 <= exc.status < 500 else EXIT_SERVICE
+        # a 429 says the service is busy: not the caller's input at fault
+        bad_input = exc.status is not None and 400 <= exc.status < 500 and exc.status != 429
+        return EXIT_BAD_INPUT if bad_input else EXIT_SERVICE
     bar.close()
     report = _write_fill(Path(args.out), names, answer, keep_rejected=args.keep_rejected)
     print(f"{report.accepted} of {len(report.frames)} frames accepted, written to {args.out} "
@@ -193,24 +195,40 @@ def log_config(level: str = "INFO") -> dict:
 
 
 def cmd_serve(args) -> int:
-    import uvicorn
-
     from .api import create_app
+    from .drain import serve
     from .settings import Settings
 
     settings = Settings.load(**({"registry": args.registry} if args.registry else {}))
     # the access log is ours (JSON, one line per request); uvicorn's would repeat it
-    uvicorn.run(create_app(settings), host=args.host, port=args.port, access_log=False,
-                log_config=log_config(), timeout_graceful_shutdown=10)
+    started = serve(create_app(settings), host=args.host, port=args.port, drain_s=settings.drain_seconds,
+                    grace_s=settings.shutdown_grace, access_log=False, log_config=log_config())
+    return EXIT_OK if started else EXIT_SERVICE
+
+
+def cmd_worker(args) -> int:
+    from .settings import Settings
+    from .worker import run_worker
+
+    overrides = {"registry": args.registry} if args.registry else {}
+    if args.id:
+        overrides["worker_id"] = args.id
+    run_worker(Settings.load(**overrides))
     return EXIT_OK
 
 
 def add_commands(subparsers) -> None:
-    """Register `serve` and `fill` on the CLI's subparsers."""
+    """Register `serve`, `worker` and `fill` on the CLI's subparsers."""
     s = subparsers.add_parser("serve", help="run the HTTP service (settings from GEOTWEEN_* variables)")
     s.add_argument("--host", default="127.0.0.1", help="interface to listen on (default: loopback only)")
     s.add_argument("--port", type=int, default=8000)
     s.set_defaults(func=cmd_serve)
+
+    s = subparsers.add_parser("worker", help="run queued jobs (fills, trainings) without serving HTTP; "
+                                             "settings from GEOTWEEN_* variables")
+    s.add_argument("--id", default=None, help="this worker's id (else $GEOTWEEN_WORKER_ID, else 'local'): a "
+                                              "restarted worker with the same id resumes its jobs")
+    s.set_defaults(func=cmd_worker)
 
     s = subparsers.add_parser("fill", help="frames at the settings of each CSV row (missing views)")
     s.add_argument("name", help="model name")

@@ -3,6 +3,7 @@ metrics) and the reusable Annotated dependencies (services, API key, model name)
 from __future__ import annotations
 
 import hmac
+import logging
 import threading
 from typing import Annotated
 
@@ -10,12 +11,16 @@ from fastapi import Depends, Request
 from fastapi import Path as PathParam
 from fastapi.security import APIKeyHeader, HTTPAuthorizationCredentials, HTTPBearer
 
+from .admission import Admission
 from .cache import ModelCache
+from .durable import JobStore, Runtime, start_runtime, stop_runtime
 from .errors import Unauthorized, Unavailable
-from .jobs import InferencePool, JobManager
+from .jobs import InferencePool
 from .metrics import Metrics
 from .registry import NAME_RULE, Registry, RegistryError, check_name
 from .settings import Settings
+
+log = logging.getLogger("geotween.service")
 
 
 class Services:
@@ -25,12 +30,49 @@ class Services:
         self.settings = settings
         self.metrics = metrics or Metrics()
         self.pool = InferencePool(settings.inference_workers)
-        self.jobs = JobManager(self.pool, queue_limit=settings.job_queue, workers=settings.job_workers,
-                               retention_s=settings.job_retention, keep=settings.jobs_kept)
+        # requests enter the pool through admission (a cap and a deadline); jobs queue on their own
+        self.admission = Admission(self.pool, max_inflight=settings.inflight_limit,
+                                   deadline_s=settings.request_deadline, metrics=self.metrics)
         self.cache = ModelCache(self.registry, capacity=settings.model_cache)
-        self.metrics.bind(self.cache, self.jobs, self.pool)
         self._registry: Registry | None = None
         self._registry_lock = threading.Lock()
+        self._jobs: JobStore | None = None
+        self._jobs_lock = threading.Lock()
+        self._runtime: Runtime | None = None
+        try:
+            self._open_jobs()
+        except Unavailable as exc:  # keep serving frames: /readyz says 503 until the jobs' database opens
+            log.warning("jobs not ready at start-up: %s", exc.message)
+        self.metrics.bind(self.cache, self._active_jobs, self.pool)
+
+    def _active_jobs(self) -> float:
+        try:
+            return self.jobs.active()
+        except Unavailable:
+            return float("nan")  # unknown while the jobs' database is down
+
+    @property
+    def jobs(self) -> JobStore:
+        return self._open_jobs()
+
+    def _open_jobs(self) -> JobStore:
+        """The job store, opened on first use, with this process's job runtime when settings say it
+        runs jobs; Unavailable (503) while the jobs' database cannot be opened."""
+        with self._jobs_lock:
+            if self._jobs is None:
+                s = self.settings
+                try:
+                    url = s.jobs_database_url
+                    self._jobs = JobStore(url, work_root=s.jobs_folder, queue_limit=s.job_queue,
+                                          retention_s=s.job_retention, keep=s.jobs_kept)
+                except Exception as exc:  # OSError, or the database driver's own errors
+                    raise Unavailable(f"the jobs' database cannot be opened: {type(exc).__name__}",
+                                      code="jobs_unavailable") from None
+                if s.run_jobs:  # one command stays enough on one machine: serve runs the jobs too
+                    self._runtime = Runtime(self.cache, self.pool, self.registry, s.jobs_folder, s.checkpoint_every,
+                                            self.metrics, url, s.worker_id, s.job_workers)
+                    start_runtime(self._runtime)
+            return self._jobs
 
     def registry(self) -> Registry:
         """The registry, opened on first use; Unavailable (503) while it cannot be opened."""
@@ -45,8 +87,9 @@ class Services:
             return self._registry
 
     def readiness(self) -> int:
-        """The registry's generation when it answers; Unavailable otherwise."""
+        """The registry's generation when it and the jobs' database answer; Unavailable otherwise."""
         registry = self.registry()
+        self.jobs.active()
         if not registry.readable():
             raise Unavailable(f"the registry at {registry.root} is not readable", code="registry_unavailable")
         try:
@@ -55,7 +98,10 @@ class Services:
             raise Unavailable(str(exc), code="registry_unavailable") from None
 
     def close(self) -> None:
-        self.jobs.shutdown()
+        if self._runtime is not None:
+            stop_runtime(self._runtime)  # a running job is resumed by the next runtime with this worker id
+        if self._jobs is not None:
+            self._jobs.close()
         self.pool.shutdown()
 
 

@@ -10,7 +10,11 @@ service itself::
     ├── Unauthorized(ServiceError, PermissionError)  401  missing or wrong API key
     ├── NotFound(ServiceError, LookupError)          404  no such job (models: registry errors)
     ├── Conflict(ServiceError)                       409  the job is not in a state that allows it
-    └── Unavailable(ServiceError)                    503  registry unreadable, job queue full
+    ├── Overloaded(ServiceError)                     429  max_inflight requests in flight (Retry-After)
+    └── Unavailable(ServiceError)                    503  registry unreadable, job queue full, draining
+        └── DeadlinePassed                           503  work not started by request_deadline (Retry-After)
+
+An error with ``retry_after`` (whole seconds, >= 1) is answered with a Retry-After header.
 
 Domain errors from lower layers are mapped too (see ``describe``): registry ModelNotFound and
 VersionNotFound to 404, InvalidName to 422, other RegistryError and BundleError to 503, SceneError
@@ -30,12 +34,14 @@ class ServiceError(Exception):
     status = 500
     code = "internal"
 
-    def __init__(self, message: str, *, field: str | None = None, code: str | None = None):
+    def __init__(self, message: str, *, field: str | None = None, code: str | None = None,
+                 retry_after: int | None = None):
         super().__init__(message)
         self.message = message
         self.field = field
         if code is not None:
             self.code = code
+        self.retry_after = None if retry_after is None else max(1, int(retry_after))
 
 
 class BadInput(ServiceError, ValueError):
@@ -62,8 +68,16 @@ class Conflict(ServiceError):
     status, code = 409, "conflict"
 
 
+class Overloaded(ServiceError):
+    status, code = 429, "overloaded"
+
+
 class Unavailable(ServiceError):
     status, code = 503, "unavailable"
+
+
+class DeadlinePassed(Unavailable):
+    code = "deadline_passed"
 
 
 @dataclass(frozen=True)

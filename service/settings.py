@@ -42,6 +42,21 @@ class Settings(BaseSettings):
     model_cache: int = Field(4, description="most models (name@version) kept loaded")
     max_train_steps: int = Field(20_000, description="most training steps a training job may ask for")
     max_train_seconds: float = Field(3600.0, description="longest training budget a job may ask for, seconds")
+    database_url: SecretStr | None = Field(None, description="the jobs' database, e.g. postgresql://user:pw@host/db "
+                                                             "(None: jobs.sqlite in the registry folder)")
+    run_jobs: bool = Field(True, description="serve also runs jobs; false: it only queues them for workers")
+    worker_id: str = Field("local", pattern=r"^[A-Za-z0-9_.-]{1,64}$",
+                           description="this process's runner id: a restarted runner with the same id resumes "
+                                       "the jobs it was running; two live runners must not share one")
+    checkpoint_every: int = Field(200, description="training steps between a training job's checkpoints")
+    max_inflight: int | None = Field(None, description="inference requests queued on the pool or running at "
+                                                        "once; more get 429 (None: 4 x inference_workers)")
+    request_deadline: float = Field(10.0, description="seconds a request's inference may wait for a worker; "
+                                                      "later it gets 503 and does no work")
+    drain_seconds: float = Field(5.0, description="after SIGTERM, seconds /readyz answers 503 while requests "
+                                                  "are still served (a load balancer stops sending)")
+    shutdown_grace: float = Field(20.0, description="then, seconds requests in flight may take to finish "
+                                                    "before they are cut off and the process exits")
 
     @field_validator("api_keys", mode="before")
     @classmethod
@@ -78,15 +93,42 @@ class Settings(BaseSettings):
             "model_cache": (1, 256),
             "max_train_steps": (1, 10_000_000),
             "max_train_seconds": (1.0, 7 * 86400.0),
+            "checkpoint_every": (1, 1_000_000),
+            "max_inflight": (1, 100_000),
+            "request_deadline": (0.01, 3600.0),
+            "drain_seconds": (0.0, 600.0),
+            "shutdown_grace": (0.1, 3600.0),
         }
         for name, (lo, hi) in ranges.items():
             value = getattr(self, name)
+            if value is None:  # unset: a default derived from other settings (max_inflight)
+                continue
             if not lo <= value <= hi:
                 raise ValueError(f"{name}: {value!r} is outside the allowed range [{lo}, {hi}]")
         if self.max_fill_targets < self.max_fill_sync:
             raise ValueError(f"max_fill_targets: {self.max_fill_targets} is below max_fill_sync="
                              f"{self.max_fill_sync}; it must be >= max_fill_sync")
         return self
+
+    @property
+    def inflight_limit(self) -> int:
+        """max_inflight, or 4 x inference_workers when unset (a short queue per worker: enough to keep
+        every worker busy between requests, short enough that a queued request waits a few service times)."""
+        return self.max_inflight if self.max_inflight is not None else 4 * self.inference_workers
+
+    @property
+    def jobs_database_url(self) -> str:
+        """The jobs' database: database_url, else SQLite in the registry folder (local disk only)."""
+        if self.database_url is not None:
+            return self.database_url.get_secret_value()
+        root = self.registry_root
+        root.mkdir(parents=True, exist_ok=True)
+        return f"sqlite:///{root / 'jobs.sqlite'}"
+
+    @property
+    def jobs_folder(self) -> Path:
+        """Where jobs keep their checkpoints and half-built bundles (beside the registry's models)."""
+        return self.registry_root / "jobs"
 
     @property
     def registry_root(self) -> Path:

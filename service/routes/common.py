@@ -25,13 +25,25 @@ _ERROR_TEXT = {
     409: "the job is not in a state that allows this",
     413: "the body or an image is over a named limit (max_body_bytes, max_image_pixels)",
     422: "a value breaks the contract (type, range, unknown parameter, bad image)",
-    503: "the registry is not readable, or the job queue is full",
+    429: "max_inflight inference requests are in flight already; nothing was computed, retry after Retry-After "
+         "seconds",
+    503: "the registry is not readable, the job queue is full, the service is draining, or the request's work "
+         "did not start within request_deadline (then nothing was computed, and Retry-After says when to retry)",
 }
+# Refusals for load carry Retry-After in delay-seconds (RFC 9110, section 10.2.3); 503s for other causes do not.
+_RETRY_AFTER = {"Retry-After": {"description": "whole seconds to wait before retrying (an estimate, >= 1)",
+                                "schema": {"type": "integer", "minimum": 1}}}
 
 
 def errors(*statuses: int) -> dict:
-    """OpenAPI `responses` entries in the one error shape."""
-    return {s: {"model": ErrorOut, "description": _ERROR_TEXT[s]} for s in statuses}
+    """OpenAPI `responses` entries in the one error shape. An operation that can answer 429 does
+    inference work under admission (service.admission): its 429 and 503 document Retry-After."""
+    out = {}
+    for s in statuses:
+        out[s] = {"model": ErrorOut, "description": _ERROR_TEXT[s]}
+        if s in (429, 503) and 429 in statuses:
+            out[s]["headers"] = _RETRY_AFTER
+    return out
 
 
 # Models that describe files rather than JSON bodies (the manifest.json inside a ZIP answer): no

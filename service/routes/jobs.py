@@ -1,4 +1,5 @@
-"""Job routes: status and progress, result (JSON or ZIP), cancel. Jobs are in memory only."""
+"""Job routes: status and progress, result (JSON or ZIP), cancel. Jobs are kept in the jobs database
+(service/durable.py), so they outlive a restart."""
 from __future__ import annotations
 
 from typing import Annotated
@@ -20,7 +21,7 @@ JobId = Annotated[str, PathParam(pattern=r"^[0-9a-f]{32}$", description="job id,
 @router.get("/{job_id}", operation_id="get_job", response_model=JobOut, responses=errors(404, 422),
             summary="State and progress of a job")
 def get_job(job_id: JobId, services: ServicesDep) -> dict:
-    return services.jobs.get(job_id).to_dict()
+    return services.jobs.get(job_id)
 
 
 @router.get("/{job_id}/result", operation_id="get_job_result", response_model=FillOut | TrainingOut,
@@ -39,7 +40,6 @@ def get_job_result(job_id: JobId, services: ServicesDep, request: Request):
                responses=errors(401, 404, 409, 422),
                summary="Cancel a job (a training job needs an API key)")
 def cancel_job(job_id: JobId, services: ServicesDep, offered: OfferedKey) -> dict:
-    job = services.jobs.get(job_id)
-    if job.kind == "training":  # it was started with a key; stopping it needs one too
+    if services.jobs.kind(job_id) == "training":  # it was started with a key; stopping it needs one too
         authorize(services.settings, offered)
-    return services.jobs.cancel(job_id).to_dict()
+    return services.jobs.cancel(job_id)

@@ -48,18 +48,18 @@ def _place(cache: ModelCache, entry: ModelVersion, codes: list[list[float]]) -> 
 
 
 @router.get("/models/{name}/map", operation_id="latent_map", response_model=LatentMapOut,
-            responses=errors(404, 422, 503), summary="The bank's latent codes on a 2-D map (PCA of the bank)")
+            responses=errors(404, 422, 429, 503), summary="The bank's latent codes on a 2-D map (PCA of the bank)")
 async def latent_map(name: ModelName, services: ServicesDep, request: Request,
                      version: Annotated[int | None, Query(ge=1, le=MAX_VERSION, description="model version (default: latest)")]
                      = None) -> LatentMapOut:
     entry = await run_in_threadpool(services.cache.lookup, name, version)
-    body = await services.pool.run(_bank_map, services.cache, entry)
+    body = await services.admission.run(_bank_map, services.cache, entry)
     note(request, model=entry.name, version=entry.version)
     return LatentMapOut(**body)
 
 
 @router.post("/models/{name}/map", operation_id="place_on_map", response_model=MapPointsOut,
-             responses=errors(400, 404, 413, 422, 503),
+             responses=errors(400, 404, 413, 422, 429, 503),
              summary="Place latent codes (a route's frames and ends) on the bank's map")
 async def place_on_map(name: ModelName, body: MapRequest, services: ServicesDep, request: Request) -> MapPointsOut:
     limit = services.settings.max_map_codes
@@ -67,6 +67,6 @@ async def place_on_map(name: ModelName, body: MapRequest, services: ServicesDep,
         raise BadInput(f"codes: {len(body.codes)} codes is over the limit; allowed 1 to max_map_codes={limit}",
                        field="codes", code="too_many_codes")
     entry = await run_in_threadpool(services.cache.lookup, name, body.version)
-    points = await services.pool.run(_place, services.cache, entry, body.codes)
+    points = await services.admission.run(_place, services.cache, entry, body.codes)
     note(request, model=entry.name, version=entry.version)
     return MapPointsOut(model=entry.name, version=entry.version, points=points)

@@ -1,7 +1,7 @@
 """Model routes: list, describe, delete, and the frame answers (between, upload form, fill)."""
 from __future__ import annotations
 
-from typing import Annotated, Literal, Mapping, Sequence
+from typing import Annotated, Literal, Mapping
 
 from fastapi import APIRouter, File, Form, Query, Request, UploadFile
 from fastapi import Path as PathParam
@@ -10,8 +10,7 @@ from starlette.concurrency import run_in_threadpool
 
 from ...models.engine import Endpoint
 from ...models.params import ParamSpace
-from ..answers import Answer, EncodedFrame, between_answer, fill_answer, fill_frames
-from ..cache import ModelCache
+from ..answers import Answer, between_answer, fill_answer, fill_chunk
 from ..deps import ApiKeyDep, ModelName, Services, ServicesDep, note
 from ..errors import BadInput
 from ..imaging import decode_base64, open_image, to_model_array
@@ -80,13 +79,6 @@ def _between(services: Services, name: str, version: int | None, start, end, fra
     return between_answer(ans, entry.name, entry.version)
 
 
-def fill_chunk(cache: ModelCache, entry: ModelVersion, targets: Sequence[Mapping[str, float]],
-               min_confidence: float, offset: int = 0, refine: bool = True) -> list[EncodedFrame]:
-    """Frames for targets[offset:offset+len], PNG-encoded; runs on the inference pool."""
-    engine = cache.engine(entry)
-    return fill_frames(engine.fill(targets, min_confidence=min_confidence, refine=refine), targets, offset=offset)
-
-
 def _frame_limit(services: Services, frames: int) -> None:
     limit = services.settings.max_frames
     if frames > limit:
@@ -96,8 +88,8 @@ def _frame_limit(services: Services, frames: int) -> None:
 
 async def _answer_between(request: Request, services: Services, name: str, start, end, *, frames: int,
                           route: str, min_confidence: float, version: int | None, refine: bool = True):
-    answer = await services.pool.run(_between, services, name, version, start, end, frames, route, min_confidence,
-                                     refine)
+    answer = await services.admission.run(_between, services, name, version, start, end, frames, route,
+                                          min_confidence, refine)
     services.metrics.frames(answer.model, len(answer.frames), answer.rejected)
     note(request, model=answer.model, version=answer.version, frames=len(answer.frames), rejected=answer.rejected)
     return respond(request, answer)
@@ -143,7 +135,7 @@ def delete_model_version(key: ApiKeyDep, name: ModelName, version: Annotated[int
 @router.post("/models/{name}/between", operation_id="between", response_model=BetweenOut,
              responses={200: media("in-between frames (JSON, or a ZIP of PNGs with manifest.json on "
                                    "Accept: application/zip)", manifest=BetweenManifestOut),
-                        **errors(400, 404, 413, 422, 503)},
+                        **errors(400, 404, 413, 422, 429, 503)},
              summary="Frames between two ends (images or settings)")
 async def between(name: ModelName, body: BetweenRequest, request: Request, services: ServicesDep):
     _frame_limit(services, body.frames)
@@ -156,7 +148,8 @@ _UPLOAD_EXAMPLE = {"start": "(PNG or JPEG file)", "end": "(PNG or JPEG file)", "
 
 
 @router.post("/models/{name}/between/upload", operation_id="between_upload", response_model=BetweenOut,
-             responses={200: media("as for between", manifest=BetweenManifestOut), **errors(400, 404, 413, 422, 503)},
+             responses={200: media("as for between", manifest=BetweenManifestOut),
+                        **errors(400, 404, 413, 422, 429, 503)},
              summary="Frames between two uploaded image files (multipart form)",
              openapi_extra={"requestBody": {"content": {"multipart/form-data": {"example": _UPLOAD_EXAMPLE}}}})
 async def between_upload(
@@ -184,7 +177,7 @@ async def between_upload(
                                    manifest=FillManifestOut),
                         202: {"model": JobOut, "description": "too many targets to answer at once (or as_job): "
                                                               "a job was queued; poll Location"},
-                        **errors(400, 404, 413, 422, 503)},
+                        **errors(400, 404, 413, 422, 429, 503)},
              summary="Frames at given settings (missing views); large batches run as jobs")
 async def fill(name: ModelName, body: FillRequest, request: Request, services: ServicesDep):
     s = services.settings
@@ -203,24 +196,15 @@ async def fill(name: ModelName, body: FillRequest, request: Request, services: S
     entry, tau = await run_in_threadpool(checked)
     targets, min_conf, refine = body.targets, body.min_confidence, body.refine
     if n <= s.max_fill_sync and not body.as_job:
-        frames = await services.pool.run(fill_chunk, services.cache, entry, targets, min_conf, 0, refine)
+        frames = await services.admission.run(fill_chunk, services.cache, entry, targets, min_conf, 0, refine)
         answer = fill_answer(frames, entry.name, entry.version, tau)
         services.metrics.frames(entry.name, len(frames), answer.rejected)
         note(request, model=entry.name, version=entry.version, frames=len(frames), rejected=answer.rejected)
         return respond(request, answer)
 
-    chunk = s.max_fill_sync
-    cache, metrics = services.cache, services.metrics
-
-    def work(ctx) -> Answer:
-        frames = []
-        for lo in range(0, n, chunk):
-            frames += ctx.compute(fill_chunk, cache, entry, targets[lo:lo + chunk], min_conf, lo, refine)
-            ctx.progress(len(frames))
-        answer = fill_answer(frames, entry.name, entry.version, tau)
-        metrics.frames(entry.name, len(frames), answer.rejected)
-        return answer
-
-    job = services.jobs.submit("fill", work, total=n, model=entry.name, version=entry.version)
-    note(request, model=entry.name, version=entry.version, job=job.id)
-    return JSONResponse(job.to_dict(), status_code=202, headers={"Location": f"/v1/jobs/{job.id}"})
+    spec = {"model": entry.name, "version": entry.version, "targets": [dict(t) for t in targets],
+            "min_confidence": min_conf, "refine": refine, "chunk": s.max_fill_sync}
+    job = await run_in_threadpool(services.jobs.submit, "fill", spec, total=n, model=entry.name,
+                                  version=entry.version, tau=tau)
+    note(request, model=entry.name, version=entry.version, job=job["id"])
+    return JSONResponse(job, status_code=202, headers={"Location": f"/v1/jobs/{job['id']}"})

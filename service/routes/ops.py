@@ -6,6 +6,7 @@ from fastapi.responses import Response
 from prometheus_client import CONTENT_TYPE_LATEST
 
 from ..deps import ServicesDep
+from ..errors import Unavailable
 from ..schemas import HealthOut, ReadyOut
 from .common import errors
 
@@ -18,8 +19,11 @@ def healthz() -> HealthOut:
 
 
 @router.get("/readyz", operation_id="readyz", response_model=ReadyOut, responses=errors(503),
-            summary="The registry is readable (503 until it is)")
-def readyz(services: ServicesDep) -> ReadyOut:
+            summary="The registry is readable (503 until it is, and from SIGTERM on)")
+def readyz(services: ServicesDep, request: Request) -> ReadyOut:
+    if request.app.state.draining:  # requests are still served; a load balancer should send no new ones
+        raise Unavailable("the service is draining before it stops (SIGTERM): requests in flight finish, new "
+                          "ones belong on another replica", code="draining")
     return ReadyOut(status="ready", generation=services.readiness())
 
 

@@ -10,7 +10,6 @@ from ..deps import ApiKeyDep, Services, ServicesDep, note
 from ..errors import BadInput
 from ..registry import check_name
 from ..schemas import JobOut, TrainingRequest
-from ..training import calibration_warning, train_into_registry
 from .common import errors
 
 router = APIRouter(prefix="/v1", tags=["trainings"])
@@ -48,18 +47,12 @@ def start_training(key: ApiKeyDep, body: TrainingRequest, services: ServicesDep,
                        f"max_train_seconds={s.max_train_seconds:g}", field="budget_seconds",
                        code="budget_too_large")
     scene = _scene_dir(services, body.scene)
-    registry = services.registry()
+    services.registry()  # 503 now, not in the job, while the registry cannot be opened
     # max_train_seconds always caps the wall clock, whatever the caller asked for
     budget = body.budget_seconds if body.budget_seconds is not None else s.max_train_seconds
 
-    def work(ctx) -> dict:
-        entry = ctx.compute(train_into_registry, scene, name, registry, resolution=body.resolution,
-                            latent_dim=None, steps=body.steps, budget=budget, seed=body.seed, tau=body.tau, quiet=True,
-                            on_step=ctx.progress, inference=False)
-        ctx.job.version = entry.version
-        return {"model": entry.name, "version": entry.version, "created": entry.created, "hash": entry.hash,
-                "metrics": entry.metrics, "warning": calibration_warning(entry)}
-
-    job = services.jobs.submit("training", work, total=body.steps or 0, model=name)
-    note(request, model=name, job=job.id, key=key)
-    return JSONResponse(job.to_dict(), status_code=202, headers={"Location": f"/v1/jobs/{job.id}"})
+    spec = {"scene": str(scene), "name": name, "resolution": body.resolution, "steps": body.steps,
+            "budget": budget, "seed": body.seed, "tau": body.tau}
+    job = services.jobs.submit("training", spec, total=body.steps or 0, model=name)
+    note(request, model=name, job=job["id"], key=key)
+    return JSONResponse(job, status_code=202, headers={"Location": f"/v1/jobs/{job['id']}"})

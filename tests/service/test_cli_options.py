@@ -5,7 +5,7 @@ from geotween.service.cli import build_parser, main
 
 VERBS = {  # each verb with the arguments it requires
     "demo": [], "render-demo": ["out"], "train": ["scene", "--name", "n"], "between": ["m", "a=1", "a=2", "--out", "o"],
-    "eval": ["m", "truth"], "models": [], "serve": [], "fill": ["m", "targets.csv", "--out", "o"],
+    "eval": ["m", "truth"], "models": [], "serve": [], "worker": [], "fill": ["m", "targets.csv", "--out", "o"],
 }
 
 

@@ -1,4 +1,4 @@
-"""Jobs: the bounded pool, the in-memory job manager, fill jobs and training jobs over HTTP."""
+"""Jobs: the bounded pool, the durable job store, fill jobs and training jobs over HTTP."""
 import shutil
 import threading
 import time
@@ -10,8 +10,9 @@ from tiny_scenes import tiny_demo_scene
 
 from geotween.models.scene import save_scene
 from geotween.service.api import create_app
+from geotween.service.durable import JobStore
 from geotween.service.errors import Conflict, NotFound, Unavailable
-from geotween.service.jobs import InferencePool, JobManager
+from geotween.service.jobs import InferencePool
 from geotween.service.registry import Registry
 from geotween.service.settings import Settings
 
@@ -41,14 +42,6 @@ def pool():
     p.shutdown()
 
 
-@pytest.fixture
-def manager(pool):
-    jm = JobManager(pool, queue_limit=3, workers=1, retention_s=60.0, keep=8)
-    yield jm
-    jm.shutdown()
-
-
-# -- pool and manager ---------------------------------------------------------------------------
 def test_pool_bounds_concurrency_and_uses_inference_mode(pool):
     live, peak, lock = [0], [0], threading.Lock()
 
@@ -70,95 +63,46 @@ def test_pool_bounds_concurrency_and_uses_inference_mode(pool):
         InferencePool(0)
 
 
-def test_job_reports_progress_then_completes(manager):
-    gate, reached = threading.Event(), threading.Event()
-
-    def work(ctx):
-        ctx.progress(1, 3)
-        reached.set()
-        gate.wait(5)
-        ctx.progress(2)
-        return ctx.compute(lambda: "done on the pool")
-
-    job = manager.submit("fill", work, total=3)
-    assert reached.wait(5)
-    status = manager.get(job.id).to_dict()
-    assert (status["state"], status["progress"]) == ("running", {"done": 1, "total": 3})
-    with pytest.raises(Conflict) as info:
-        manager.result(job.id)
-    assert info.value.code == "job_not_finished" and info.value.status == 409
-    gate.set()
-    wait_for(lambda: manager.get(job.id).state == "done")
-    assert manager.result(job.id) == "done on the pool"
-    assert manager.get(job.id).to_dict()["progress"] == {"done": 3, "total": 3}
-    assert manager.get(job.id).to_dict()["result"] == f"/v1/jobs/{job.id}/result"
+@pytest.fixture
+def store(tmp_path):
+    now = [time.time()]  # the database stamps jobs with the wall clock; the test moves past it
+    st = JobStore(f"sqlite:///{tmp_path / 'jobs.sqlite'}", work_root=tmp_path / "jobs", queue_limit=3,
+                  retention_s=60.0, keep=2, clock=lambda: now[0])
+    yield st, now
+    st.close()
 
 
-def test_running_job_is_cancelled_at_its_next_progress_report(manager):
-    started = threading.Event()
-
-    def work(ctx):
-        for i in range(1000):
-            ctx.progress(i, 1000)
-            started.set()
-            time.sleep(0.005)
-        return "finished anyway"
-
-    job = manager.submit("fill", work, total=1000)
-    assert started.wait(5)
-    manager.cancel(job.id)
-    wait_for(lambda: manager.get(job.id).state == "cancelled")
-    assert manager.get(job.id).done < 1000
-    with pytest.raises(Conflict) as info:
-        manager.result(job.id)
-    assert info.value.code == "job_cancelled"
+def test_queue_is_bounded_and_queued_jobs_cancel_at_once(store):
+    st, _ = store  # no runtime in this process: jobs stay queued
+    ids = [st.submit("fill", {"targets": []}, total=5, model="m", version=1)["id"] for _ in range(3)]
+    assert all(st.get(i)["state"] == "queued" and st.get(i)["progress"] == {"done": 0, "total": 5} for i in ids)
+    with pytest.raises(Unavailable) as full:
+        st.submit("fill", {"targets": []}, total=1)
+    assert full.value.code == "job_queue_full"
+    assert st.cancel(ids[0])["state"] == "cancelled"
+    assert st.counts() == {"queued": 2, "running": 0, "done": 0, "failed": 0, "cancelled": 1}
+    st.submit("fill", {"targets": []}, total=1)  # a place came free
+    with pytest.raises(Conflict) as early:
+        st.result(ids[1])
+    assert early.value.code == "job_not_finished"
+    with pytest.raises(NotFound):
+        st.get("0" * 32)
 
 
-def test_queued_job_is_cancelled_before_it_runs_and_the_queue_is_bounded(manager):
-    gate, ran = threading.Event(), []
-    first = manager.submit("fill", lambda ctx: gate.wait(5), total=1)
-    second = manager.submit("fill", lambda ctx: ran.append("second"), total=1)
-    third = manager.submit("fill", lambda ctx: ran.append("third"), total=1)
-    with pytest.raises(Unavailable) as info:  # queue_limit = 3 queued or running
-        manager.submit("fill", lambda ctx: None, total=1)
-    assert info.value.status == 503 and info.value.code == "job_queue_full"
-    assert manager.cancel(second.id).state == "cancelled"
-    gate.set()
-    wait_for(lambda: manager.get(third.id).state == "done")
-    assert ran == ["third"] and manager.get(first.id).state == "done"
-    with pytest.raises(Conflict) as info:
-        manager.cancel(first.id)
-    assert info.value.code == "job_finished"
-
-
-def test_failures_are_reported_with_the_error_shape(manager):
-    bad = manager.submit("fill", lambda ctx: float("x"), total=1)  # ValueError: bad input, 422
-    boom = manager.submit("fill", lambda ctx: 1 / 0, total=1)      # a bug: 500, details hidden
-    wait_for(lambda: manager.get(boom.id).state == "failed")
-    err = manager.get(bad.id).to_dict()["error"]
-    assert manager.get(bad.id).state == "failed" and err["code"] == "invalid" and "float" in err["message"]
-    assert manager.get(boom.id).to_dict()["error"]["code"] == "internal"
-    assert "division" not in manager.get(boom.id).to_dict()["error"]["message"]
-    with pytest.raises(Conflict) as info:
-        manager.result(bad.id)
-    assert info.value.code == "job_failed"
-
-
-def test_finished_jobs_expire_after_retention_and_beyond_keep(pool):
-    now = [1000.0]
-    jm = JobManager(pool, queue_limit=10, workers=1, retention_s=60.0, keep=2, clock=lambda: now[0])
-    try:
-        jobs = [jm.submit("fill", lambda ctx: i, total=1) for i in range(3)]
-        wait_for(lambda: all(jm.get(j.id).state == "done" for j in jobs[-1:]) and jm.active() == 0)
-        with pytest.raises(NotFound):  # keep = 2: the oldest finished job went first
-            jm.get(jobs[0].id)
-        assert jm.get(jobs[2].id).state == "done"
-        now[0] += 61.0
-        with pytest.raises(NotFound) as info:
-            jm.get(jobs[2].id)
-        assert info.value.code == "job_not_found" and "lost on restart" in info.value.message
-    finally:
-        jm.shutdown()
+def test_finished_jobs_expire_after_retention_and_beyond_keep(store):
+    st, now = store
+    ids = []
+    for _ in range(3):
+        ids.append(st.submit("fill", {"targets": []}, total=1)["id"])
+        st.cancel(ids[-1])
+        now[0] += 2.0
+    st.get(ids[-1])  # a query purges: three finished, keep=2, so the oldest is gone
+    with pytest.raises(NotFound):
+        st.get(ids[0])
+    assert st.get(ids[1])["state"] == "cancelled"
+    now[0] += 61.0
+    with pytest.raises(NotFound):
+        st.get(ids[2])
 
 
 # -- over HTTP ----------------------------------------------------------------------------------
