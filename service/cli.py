@@ -17,6 +17,7 @@ from .cli_common import (
     UsageError,
     add_global_options,
     configure_torch,
+    registry_of,
 )
 from .cli_remote import add_commands
 
@@ -27,9 +28,7 @@ LATENT_MAP = "latent_map.png"  # bank codes (PCA) with the route(s) drawn, besid
 
 
 def _registry(args):
-    from .registry import Registry
-
-    return Registry.open(args.registry)
+    return registry_of(args)
 
 
 def _print_json(obj) -> None:

@@ -25,6 +25,14 @@ def add_global_options(parser: argparse.ArgumentParser, *, after_verb: bool = Fa
                         help="torch threads (default: cores, at most 4)")
 
 
+def registry_of(args):
+    """The registry the service would use: --registry (else $GEOTWEEN_REGISTRY), and the shared index
+    and object store when GEOTWEEN_DATABASE_URL / GEOTWEEN_STORE_URL say so."""
+    from .settings import Settings
+
+    return Settings.load(**({"registry": args.registry} if args.registry else {})).open_registry()
+
+
 def configure_torch(threads: int | None = None) -> None:
     """Set torch's intra-op threads once per process (default: all cores, at most 4)."""
     import torch

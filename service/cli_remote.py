@@ -16,7 +16,7 @@ import sys
 from pathlib import Path
 from typing import Callable, Mapping, Sequence, TextIO
 
-from .cli_common import EXIT_BAD_INPUT, EXIT_OK, NO_REFINE_HELP, UsageError
+from .cli_common import EXIT_BAD_INPUT, EXIT_OK, NO_REFINE_HELP, UsageError, registry_of
 
 NOTICE = "frames are synthesized by a learned model, not captured"
 EXIT_SERVICE = 1  # the service could not be reached, or failed on its side
@@ -93,9 +93,7 @@ def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable
                 chunk: int = 32):
     """The fill answered by the local engine, as the service would answer it (answers.Answer)."""
     from .answers import fill_answer, fill_frames
-    from .registry import Registry
-
-    engine, entry = open_engine(Registry.open(args.registry), args.name, args.version)
+    engine, entry = open_engine(registry_of(args), args.name, args.version)
     for i, target in enumerate(targets):  # every bad row is named before any work starts
         try:
             engine.space.vector(target)

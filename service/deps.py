@@ -80,7 +80,7 @@ class Services:
             if self._registry is None:
                 root = self.settings.registry_root
                 try:
-                    self._registry = Registry.open(root)
+                    self._registry = self.settings.open_registry()
                 except (RegistryError, OSError) as exc:
                     raise Unavailable(f"the registry at {root} cannot be opened: {exc}",
                                       code="registry_unavailable") from None

@@ -1,10 +1,13 @@
-"""Versioned model store: an SQLite index plus one bundle folder per version.
+"""Versioned model store: an index (SQLite, or PostgreSQL shared by replicas) plus one bundle per
+version (a folder, or content-addressed objects in an S3-compatible store: service/store.py).
 
-Layout under ROOT::
+Layout under ROOT (each replica's own local folder)::
 
     ROOT/index.sqlite              tables `versions` (one row per published version) and `meta`
+                                   (in PostgreSQL: the same tables in schema `geotween`)
     ROOT/models/<name>/<version>/  a complete bundle (manifest.json, weights, config, arrays)
     ROOT/staging/<tmp>/            publishes in progress; renamed into models/ when complete
+    ROOT/cache/<digest>/           with an object store: local copies of the bundles served
 
 A row is inserted only after its folder has been renamed into place, so readers never see a
 half-written bundle. Folders under models/ without a row (a crash between rename and insert) are
@@ -34,19 +37,22 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Callable, Iterator
 
+from .store import S3_PREFIX, ObjectStore
+
 ENV_VAR = "GEOTWEEN_REGISTRY"
 DEFAULT_ROOT = Path("~/.local/share/geotween/registry")  # expanded at call time, so $HOME is honoured
 NAME_RULE = r"[a-z0-9][a-z0-9._-]{0,63}"
 _NAME_RE = re.compile(NAME_RULE)
 
-_SCHEMA = """
-CREATE TABLE IF NOT EXISTS versions (
+_SCHEMA = [  # the same SQL for SQLite and PostgreSQL
+    """CREATE TABLE IF NOT EXISTS versions (
     name TEXT NOT NULL, version INTEGER NOT NULL, created TEXT NOT NULL, hash TEXT NOT NULL,
     metrics TEXT NOT NULL, status TEXT NOT NULL CHECK (status IN ('ready', 'deleted')),
-    path TEXT NOT NULL, PRIMARY KEY (name, version));
-CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value INTEGER NOT NULL);
-INSERT OR IGNORE INTO meta (key, value) VALUES ('generation', 0);
-"""
+    path TEXT NOT NULL, PRIMARY KEY (name, version))""",
+    "CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value INTEGER NOT NULL)",
+    "INSERT INTO meta (key, value) VALUES ('generation', 0) ON CONFLICT (key) DO NOTHING",
+]
+PG_SCHEMA = "geotween"
 _COLUMNS = "name, version, created, hash, metrics, path"
 
 
@@ -125,7 +131,7 @@ class Registry:
     """
 
     def __init__(self, root: str | Path, *, busy_timeout_s: float = 10.0,
-                 stale_staging_s: float = 3600.0):
+                 stale_staging_s: float = 3600.0, index_url: str | None = None, store: ObjectStore | None = None):
         for key, value in (("busy_timeout_s", busy_timeout_s), ("stale_staging_s", stale_staging_s)):
             if not value > 0:
                 raise ValueError(f"{key} must be > 0 seconds; got {value!r}")
@@ -135,12 +141,21 @@ class Registry:
         self.stale_staging_s = float(stale_staging_s)
         self._setup_lock = threading.Lock()
         self._is_setup = False
+        self.store = store  # None: bundles in ROOT/models
+        self._pg = None
+        if index_url is not None:  # the index in PostgreSQL, shared by every replica
+            import sqlalchemy
+
+            url = sqlalchemy.make_url(index_url).set(drivername="postgresql+psycopg")
+            self._pg = sqlalchemy.create_engine(url, pool_size=4, max_overflow=4, pool_pre_ping=True,
+                                                connect_args={"options": f"-c search_path={PG_SCHEMA}",
+                                                              "connect_timeout": int(busy_timeout_s)})
 
     @classmethod
     def open(cls, root: str | Path | None = None, *, create: bool = True, **settings) -> "Registry":
         """Open (and with `create`, initialise) the registry at resolve_root(root)."""
         registry = cls(resolve_root(root), **settings)
-        if not create and not registry.index.is_file():
+        if not create and registry._pg is None and not registry.index.is_file():
             raise RegistryError(f"no registry at {registry.root} (index.sqlite missing); "
                                 f"open it with create=True to make one")
         registry._setup()
@@ -148,6 +163,13 @@ class Registry:
 
     def readable(self) -> bool:
         """True when the index opens and answers a query (a readiness probe; creates nothing)."""
+        if self._pg is not None:
+            try:
+                with self._connect() as con:
+                    con.execute("SELECT count(*) FROM versions").fetchone()
+                return True
+            except RegistryError:
+                return False
         uri = self.index.as_uri() + "?mode=rw"  # rw, not rwc: a missing index stays missing
         try:
             with contextlib.closing(sqlite3.connect(uri, uri=True, timeout=self.busy_timeout_s)) as con:
@@ -160,9 +182,10 @@ class Registry:
         """Every name with at least one ready version, sorted by name."""
         self._setup()
         with self._connect() as con:
-            # With exactly one max() aggregate, SQLite takes the bare `created` from the max row.
-            rows = con.execute("SELECT name, max(version), count(*), created FROM versions "
-                               "WHERE status = 'ready' GROUP BY name ORDER BY name").fetchall()
+            rows = con.execute(
+                "SELECT v.name, v.version, c.n, v.created FROM versions v JOIN (SELECT name, max(version) AS "
+                "latest, count(*) AS n FROM versions WHERE status = 'ready' GROUP BY name) c ON v.name = c.name "
+                "AND v.version = c.latest ORDER BY v.name").fetchall()
         return [ModelSummary(*row) for row in rows]
 
     def versions(self, name: str) -> list[ModelVersion]:
@@ -187,6 +210,8 @@ class Registry:
                 row = _ready(con, "name = ? AND version = ?", name, version).fetchone()
             if row is None:
                 raise self._missing(con, name, version)
+        if self.store is not None:
+            self.store.local(row[-1])  # the bundle served is a local copy
         return self._to_version(row)
 
     def generation(self) -> int:
@@ -207,6 +232,19 @@ class Registry:
         try:
             build(staging)
             manifest = _read_manifest(staging)
+            if self.store is not None:  # uploaded before the row is written: a version exists once its row commits
+                stored = self.store.put(staging)
+                with self._connect(write=True) as con:
+                    version = (con.execute("SELECT max(version) FROM versions WHERE name = ?",
+                                           (name,)).fetchone()[0] or 0) + 1
+                    entry = ModelVersion(name, version, _utc_now(), manifest["hash"], manifest["metrics"],
+                                         self._local(stored))
+                    _insert_row(con, entry, stored)
+                    _bump_generation(con)
+                with contextlib.suppress(OSError):  # the local copy is the staging folder itself
+                    self.store.cache.mkdir(parents=True, exist_ok=True)
+                    os.rename(staging, entry.path)
+                return entry
             _fsync_tree(staging)  # contents are final: flush them before taking the write lock
             with self._connect(write=True) as con:
                 last = con.execute("SELECT max(version) FROM versions WHERE name = ?",
@@ -224,7 +262,7 @@ class Registry:
                     _fsync(parent)
                     _insert_row(con, entry, final.relative_to(self.root).as_posix())
                     _bump_generation(con)
-                    con.execute("COMMIT")
+                    con.commit()
                 except BaseException:
                     _move_back(final, staging)  # so index and disk agree
                     raise
@@ -243,8 +281,13 @@ class Registry:
             con.execute("UPDATE versions SET status = 'deleted' WHERE name = ? AND version = ?",
                         (name, version))
             _bump_generation(con)
+            shared = con.execute("SELECT count(*) FROM versions WHERE status = 'ready' AND path = ?",
+                                 (row[-1],)).fetchone()[0]
         # Only after the commit: until then readers may still be handed this folder.
-        shutil.rmtree(self._to_version(row).path, ignore_errors=True)
+        if self.store is None:
+            shutil.rmtree(self._to_version(row).path, ignore_errors=True)
+        elif not shared:  # content-addressed: another version may hold the same bundle
+            self.store.remove(row[-1])
 
     def _setup(self) -> None:
         with self._setup_lock:
@@ -252,9 +295,15 @@ class Registry:
                 return
             for sub in ("models", "staging"):
                 (self.root / sub).mkdir(parents=True, exist_ok=True)
-            with self._connect() as con:
-                con.execute("PRAGMA journal_mode=WAL")  # persistent: readers never block the writer
-                con.executescript(_SCHEMA)
+            if self._pg is not None:
+                with self._connect(schema=True) as con:
+                    for statement in _SCHEMA:
+                        con.execute(statement)
+            else:
+                with self._connect() as con:
+                    con.execute("PRAGMA journal_mode=WAL")  # persistent: readers never block the writer
+                    for statement in _SCHEMA:
+                        con.execute(statement)
             self._clean_staging()
             self._is_setup = True
 
@@ -266,7 +315,11 @@ class Registry:
                     shutil.rmtree(entry, ignore_errors=True)
 
     @contextlib.contextmanager
-    def _connect(self, *, write: bool = False) -> Iterator[sqlite3.Connection]:
+    def _connect(self, *, write: bool = False, schema: bool = False) -> Iterator:
+        if self._pg is not None:
+            with self._pg_connect(write=write, schema=schema) as con:
+                yield con
+            return
         try:
             con = sqlite3.connect(self.index, timeout=self.busy_timeout_s, isolation_level=None)
         except sqlite3.Error as exc:
@@ -287,7 +340,39 @@ class Registry:
         finally:
             con.close()
 
-    def _missing(self, con: sqlite3.Connection, name: str, version: int | None) -> ModelNotFound:
+    @contextlib.contextmanager
+    def _pg_connect(self, *, write: bool, schema: bool) -> Iterator["_PgConnection"]:
+        import sqlalchemy
+
+        try:
+            raw = self._pg.raw_connection()
+        except sqlalchemy.exc.SQLAlchemyError as exc:
+            raise RegistryError(f"cannot open the registry index in PostgreSQL: {type(exc.orig or exc).__name__}: "
+                                f"{str(exc.orig or exc).splitlines()[0]}") from None
+        con = _PgConnection(raw)
+        try:
+            if schema:  # one replica creates the tables; the others wait for it
+                con.execute("SELECT pg_advisory_xact_lock(7262331)")
+                con.execute(f"CREATE SCHEMA IF NOT EXISTS {PG_SCHEMA}")
+            if write:  # writers queue on the generation row, as SQLite's writers do on its lock
+                con.execute("SELECT value FROM meta WHERE key = 'generation' FOR UPDATE")
+            yield con
+            raw.commit()
+        except BaseException as exc:
+            with contextlib.suppress(Exception):
+                raw.rollback()
+            if isinstance(exc, (RegistryError, InvalidName, ModelNotFound)) or not isinstance(exc, Exception):
+                raise
+            if type(exc).__module__.startswith("psycopg"):
+                raise RegistryError(f"registry index (PostgreSQL): {exc}") from exc
+            raise
+        finally:
+            raw.close()  # back to the pool
+
+    def _local(self, path: str) -> Path:
+        return self.store.cache / path.removeprefix(S3_PREFIX) if path.startswith(S3_PREFIX) else self.root / path
+
+    def _missing(self, con, name: str, version: int | None) -> ModelNotFound:
         ready = [v for (v,) in con.execute("SELECT version FROM versions WHERE name = ? AND "
                                            "status = 'ready' ORDER BY version", (name,))]
         if not ready:
@@ -300,7 +385,7 @@ class Registry:
 
     def _to_version(self, row: tuple) -> ModelVersion:
         name, version, created, hash_, metrics, path = row
-        return ModelVersion(name, version, created, hash_, json.loads(metrics), self.root / path)
+        return ModelVersion(name, version, created, hash_, json.loads(metrics), self._local(path))
 
 
 def _read_manifest(folder: Path) -> dict:
@@ -323,17 +408,32 @@ def _read_manifest(folder: Path) -> dict:
     return manifest
 
 
-def _ready(con: sqlite3.Connection, where: str, *args: object) -> sqlite3.Cursor:
+class _PgConnection:
+    """A pooled psycopg connection that takes the registry's SQLite-style '?' placeholders."""
+
+    def __init__(self, raw):
+        self.raw = raw
+
+    def execute(self, sql: str, params: tuple = ()):
+        cur = self.raw.cursor()
+        cur.execute(sql.replace("?", "%s"), tuple(params))
+        return cur
+
+    def commit(self) -> None:
+        self.raw.commit()
+
+
+def _ready(con, where: str, *args: object):
     return con.execute(f"SELECT {_COLUMNS} FROM versions WHERE status = 'ready' AND {where}", args)
 
 
-def _insert_row(con: sqlite3.Connection, entry: ModelVersion, rel_path: str) -> None:
+def _insert_row(con, entry: ModelVersion, rel_path: str) -> None:
     con.execute("INSERT INTO versions (name, version, created, hash, metrics, status, path) "
                 "VALUES (?, ?, ?, ?, ?, 'ready', ?)", (entry.name, entry.version, entry.created,
                                                        entry.hash, json.dumps(entry.metrics), rel_path))
 
 
-def _bump_generation(con: sqlite3.Connection) -> None:
+def _bump_generation(con) -> None:
     con.execute("UPDATE meta SET value = value + 1 WHERE key = 'generation'")
 
 

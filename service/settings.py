@@ -11,7 +11,7 @@ from typing import Annotated
 from pydantic import Field, SecretStr, ValidationError, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
-from .registry import resolve_root
+from .registry import Registry, resolve_root
 
 MIB = 1024 * 1024
 MIN_KEY_LENGTH = 16  # shorter shared secrets are guessable; common practice for bearer keys
@@ -44,6 +44,11 @@ class Settings(BaseSettings):
     max_train_seconds: float = Field(3600.0, description="longest training budget a job may ask for, seconds")
     database_url: SecretStr | None = Field(None, description="the jobs' database, e.g. postgresql://user:pw@host/db "
                                                              "(None: jobs.sqlite in the registry folder)")
+    store_url: str | None = Field(None, pattern=r"^s3://[a-z0-9][a-z0-9.-]{1,61}[a-z0-9](/.*)?$",
+                                  description="bundles in an S3-compatible object store, s3://bucket/prefix "
+                                              "(None: in the registry folder)")
+    store_endpoint: str | None = Field(None, description="the object store's endpoint URL, for S3-compatible "
+                                                         "servers (None: the AWS default)")
     run_jobs: bool = Field(True, description="serve also runs jobs; false: it only queues them for workers")
     worker_id: str = Field("local", pattern=r"^[A-Za-z0-9_.-]{1,64}$",
                            description="this process's runner id: a restarted runner with the same id resumes "
@@ -124,6 +129,18 @@ class Settings(BaseSettings):
         root = self.registry_root
         root.mkdir(parents=True, exist_ok=True)
         return f"sqlite:///{root / 'jobs.sqlite'}"
+
+    def open_registry(self) -> Registry:
+        """The registry these settings name: its index in PostgreSQL when database_url is set, its
+        bundles in the object store when store_url is set; the registry folder holds the rest."""
+        root = self.registry_root
+        store = None
+        if self.store_url is not None:
+            from .store import ObjectStore
+
+            store = ObjectStore(self.store_url, cache=root / "cache", endpoint=self.store_endpoint)
+        url = self.database_url.get_secret_value() if self.database_url is not None else None
+        return Registry.open(root, index_url=url, store=store)
 
     @property
     def jobs_folder(self) -> Path:
