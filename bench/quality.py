@@ -55,17 +55,23 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
     route_ms = (time.perf_counter() - t) / len(ends) * 1e3
     imgs = engine.bundle.images()
     # a 16-frame answer with image ends, side by side in one run: as served with no flows kept from
-    # earlier answers ("cold": every frame's capture pair estimated afresh), as served again with the
-    # flows kept ("warm"), and decoded only (refine false: today's unrefined answer)
+    # earlier answers ("cold": every frame's capture pair estimated afresh), first answers of a model
+    # whose likely pairs were estimated in the background after its load, as the service does
+    # ("loaded"), as served again with the flows kept ("warm"), and decoded only (refine false)
     from geotween.models.engine import ServingConfig
 
     cold = Engine.load(out / "bundle", ServingConfig(flow_cache_mb=0))
+    loaded = Engine.load(out / "bundle")
+    t = time.perf_counter()
+    warmed_pairs = loaded.warm_flows()
+    warm_load_s = time.perf_counter() - t
     ends = [(Endpoint(image=imgs[i]), Endpoint(image=imgs[-1 - i])) for i in range(min(30, len(imgs) // 2))]
     for a, b in ends:
         engine.between(a, b, frames=16)
-    timed = {"cold": [], "warm": [], "decoded": []}
+    timed = {"cold": [], "loaded": [], "warm": [], "decoded": []}
     for a, b in ends:
-        for key, eng, refine in (("cold", cold, True), ("warm", engine, True), ("decoded", cold, False)):
+        for key, eng, refine in (("cold", cold, True), ("loaded", loaded, True), ("warm", engine, True),
+                                 ("decoded", cold, False)):
             t = time.perf_counter()
             eng.between(a, b, frames=16, refine=refine)
             timed[key].append((time.perf_counter() - t) * 1e3)
@@ -83,7 +89,9 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
                "route_ms_mean": round(route_ms, 3), "answer16_ms_p50": round(float(np.median(times)), 2),
                "answer16_ms_p99": round(float(np.percentile(times, 99)), 2),
                "answer16_p50_ms": {k: round(v, 2) for k, v in p50.items()},
-               "answer16_ratio_to_decoded": {k: round(p50[k] / p50["decoded"], 2) for k in ("cold", "warm")},
+               "answer16_ratio_to_decoded": {k: round(p50[k] / p50["decoded"], 2) for k in ("cold", "loaded", "warm")},
+               "flows_at_load": {"pairs": warmed_pairs, "seconds": round(warm_load_s, 2),
+                                 "mb": round(loaded.flow_cache.used / 2 ** 20, 1)},
                "report": report,
                "bundle": str(out / "bundle")}
     (out / "quality.json").write_text(json.dumps(summary, indent=1))

@@ -75,7 +75,7 @@ class ServingConfig:
     # captures of the subject. Training-time choices and calibration turn this off, so that the
     # held-out truth is never among the captures a frame is made from
     holdout_captures: bool = True
-    flow_cache_mb: int = 32        # flows between capture pairs kept across requests (0: none kept)
+    flow_cache_mb: int = 64        # flows between capture pairs kept across requests (0: none kept)
 
     def __post_init__(self) -> None:
         counts = {"chart_neighbours": 1, "attach": 1, "refine_threads": 1, "flow_cache_mb": 0}
@@ -248,6 +248,14 @@ class Engine:
     def flow_cache(self) -> lpairs.FlowCache:
         """Flows between capture pairs, kept across requests (models.pairs.FlowCache)."""
         return lpairs.FlowCache(self.config.flow_cache_mb << 20)
+
+    def warm_flows(self, stop=None) -> int:
+        """Fill the flow cache with the flows of the capture pairs brackets are likely to take, so
+        that first answers cost what later ones do (a service runs it in the background after a
+        load); the number of pairs added. Nothing for a model that does not make frames from pairs."""
+        if self.refine is None or self.refine.mode != "pair" or self.config.flow_cache_mb == 0:
+            return 0
+        return lpairs.warm(self.flow_cache, self.captures, lpairs.likely_pairs(self.bracketer), self.refine.flow, stop)
 
     @cached_property
     def _refine_pool(self) -> ThreadPoolExecutor | None:

@@ -111,6 +111,49 @@ class Bracketer:
                        length=length[rows, best], off=off[rows, best])
 
 
+def likely_pairs(bracketer: "Bracketer", reach: float = 2.0) -> list[tuple[int, int]]:
+    """Capture pairs brackets are likely to take: the brackets of points a quarter, a half and three
+    quarters of the way from each capture to every other one within `reach` spacings (as frames
+    between captures lie; 2 spacings spans the gap a missing capture leaves), the pairs most often
+    taken first, then the shortest."""
+    starts, ends = [], []
+    for i, near in enumerate(bracketer.tree.query_ball_point(np.mod(bracketer.u, bracketer.box), r=reach)):
+        near = [j for j in near if j != i]
+        starts += [i] * len(near)
+        ends += near
+    if not starts:
+        return []
+    start, end = np.asarray(starts), np.asarray(ends)
+    d = bracketer.u[end] - bracketer.u[start]
+    d -= bracketer.box * np.round(d / bracketer.box)                      # nearest images across seams
+    points = bracketer.u[start, None, :] + np.array([0.25, 0.5, 0.75])[None, :, None] * d[:, None, :]
+    br = bracketer(points.reshape(-1, bracketer.u.shape[1]))
+    keep = br.first != br.second
+    pairs, counts = np.unique(np.stack([br.first[keep], br.second[keep]], axis=-1), axis=0, return_counts=True)
+    g = bracketer.u[pairs[:, 1]] - bracketer.u[pairs[:, 0]]
+    lengths = np.linalg.norm(g - bracketer.box * np.round(g / bracketer.box), axis=-1)
+    return [(int(pairs[n, 0]), int(pairs[n, 1])) for n in np.lexsort((lengths, -counts))]
+
+
+def warm(cache: "FlowCache", captures, pairs: list[tuple[int, int]], method: str,
+         stop: threading.Event | None = None) -> int:
+    """Estimate the flows of `pairs` in order into `cache` until it is full (nothing already kept is
+    pushed out) or `stop` is set; returns how many pairs were added."""
+    added = 0
+    for key in pairs:
+        if stop is not None and stop.is_set():
+            break
+        if cache.get((method,) + key) is not None:
+            continue
+        a, b = np.asarray(captures(np.asarray(key, dtype=np.int64)), dtype=np.float32)
+        flows = pair_flows(a, b, method)
+        if cache.used + flows.nbytes > cache.budget:
+            break
+        cache.put((method,) + key, flows)
+        added += 1
+    return added
+
+
 @dataclass
 class PairFlows:
     """Flows between two captures A and B both ways, and each side's visibility: exp(-(e / CONSISTENCY)^2)

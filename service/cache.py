@@ -6,6 +6,7 @@ without a restart and nothing is reloaded per request.
 """
 from __future__ import annotations
 
+import logging
 import threading
 from collections import OrderedDict
 from pathlib import Path
@@ -17,6 +18,7 @@ from ..models.manifest import Manifest
 from ..models.params import ParamSpace
 from .registry import ModelVersion, Registry, RegistryError
 
+log = logging.getLogger("geotween.cache")
 MANIFESTS_KEPT = 256  # parsed manifests memoised; a few KB each
 
 
@@ -24,7 +26,7 @@ class ModelCache:
     """Up to `capacity` engines, least recently used dropped first; each loaded once."""
 
     def __init__(self, registry: Callable[[], Registry], *, capacity: int = 4,
-                 loader: Callable[[Path], Engine] = Engine.load):
+                 loader: Callable[[Path], Engine] = Engine.load, warm: bool = True):
         if isinstance(capacity, bool) or not isinstance(capacity, int) or capacity < 1:
             raise ValueError(f"capacity: {capacity!r} is not allowed; expected an integer >= 1")
         self._registry, self.capacity, self._loader = registry, capacity, loader
@@ -35,6 +37,8 @@ class ModelCache:
         self._manifests: dict[tuple[str, int, str], Manifest] = {}
         self._generation: int | None = None
         self.loads = 0  # engines built since start (a reload per request would show here)
+        self.warm = warm
+        self._warming: dict[int, threading.Event] = {}  # engines whose flows are being estimated
 
     @property
     def size(self) -> int:
@@ -78,9 +82,22 @@ class ModelCache:
                 self.loads += 1
                 self._engines[key] = engine
                 while len(self._engines) > self.capacity:
-                    self._engines.popitem(last=False)
+                    _, dropped = self._engines.popitem(last=False)
+                    self._warming.pop(id(dropped), threading.Event()).set()
                 self._key_locks.pop(key, None)
+                stop = self._warming[id(engine)] = threading.Event()
+            if self.warm:  # later answers find the flows of likely capture pairs already estimated
+                threading.Thread(target=self._warm, args=(engine, stop), name="geotween-flows", daemon=True).start()
         return engine
+
+    def _warm(self, engine: Engine, stop: threading.Event) -> None:
+        try:
+            engine.warm_flows(stop)
+        except Exception:  # a warm-up is only a head start: answers estimate what is missing
+            log.exception("estimating capture-pair flows after a load failed")
+        finally:
+            with self._lock:
+                self._warming.pop(id(engine), None)
 
     def manifest(self, entry: ModelVersion) -> Manifest:
         """The bundle's manifest, parsed (JSON only, no weights), memoised per version."""

@@ -165,3 +165,35 @@ def test_a_pair_is_named_lower_index_first_whichever_way_it_is_passed():
     a, b = br([[2.25, 3.0]]), br([[2.75, 3.0]])  # nearer to one end, then to the other
     assert (int(a.first[0]), int(a.second[0])) == (int(b.first[0]), int(b.second[0]))
     assert a.first[0] < a.second[0] and a.at[0] + b.at[0] == pytest.approx(1.0)
+
+
+def test_likely_pairs_are_the_brackets_between_neighbouring_captures():
+    u, box = grid_bank()  # 8 x 5, the first axis periodic
+    br = lpairs.Bracketer(u, box)
+    pairs = lpairs.likely_pairs(br)
+    lengths = [np.linalg.norm((d := u[j] - u[i]) - box * np.round(d / box)) for i, j in pairs]
+    assert all(i < j for i, j in pairs) and len(set(pairs)) == len(pairs) and max(lengths) <= lpairs.MAX_LENGTH
+    # every grid edge is there: 8 x 5 along the periodic axis (it wraps) and 8 x 4 across it
+    edges = {tuple(sorted((index(u, x, y), index(u, (x + 1) % 8, y)))) for x in range(8) for y in range(5)}
+    edges |= {tuple(sorted((index(u, x, y), index(u, x, y + 1)))) for x in range(8) for y in range(4)}
+    assert edges <= set(pairs) and len(edges) == 72
+    # a missing capture: frames in its gap are made from pairs among them
+    rest = np.delete(u, index(u, 3, 2), axis=0)
+    gap = lpairs.Bracketer(rest, box)
+    around = set(lpairs.likely_pairs(gap))
+    b = gap([[x, 2.0] for x in (2.25, 2.5, 3.0, 3.5, 3.75)] + [[3.0, y] for y in (1.25, 1.5, 2.5, 2.75)])
+    assert set(zip(b.first.tolist(), b.second.tolist())) <= around
+
+
+def test_warming_fills_the_flow_cache_in_order_and_never_pushes_a_flow_out(coffee):
+    caps = np.stack([window(coffee, 100.0 + 6 * i) for i in range(4)])
+    pairs = [(0, 1), (1, 2), (2, 3)]
+    one = lpairs.pair_flows(caps[0], caps[1]).nbytes
+    cache = lpairs.FlowCache(budget=2 * one + one // 2)  # room for two pairs
+    cache.put(("dis", 1, 2), lpairs.pair_flows(caps[1], caps[2]))  # kept from an earlier answer
+    assert lpairs.warm(cache, lambda idx: caps[np.asarray(idx)], pairs, "dis") == 1
+    assert cache.get(("dis", 0, 1)) is not None and cache.get(("dis", 1, 2)) is not None
+    assert cache.get(("dis", 2, 3)) is None and len(cache) == 2
+    stop = __import__("threading").Event()
+    stop.set()
+    assert lpairs.warm(lpairs.FlowCache(), lambda idx: caps[np.asarray(idx)], pairs, "dis", stop) == 0

@@ -90,3 +90,15 @@ def test_the_choice_scores_frames_from_captures_beside_detail_transfer(turntable
                          Endpoint(params={"yaw": 70.0, "camera_height": 35.0}), frames=3)
     assert all({"pair_flow", "pair_span", "pair_off", "pair_gap"} <= set(f.signals) for f in ans.frames)
     assert all(f.detail is not None for f in ans.frames)
+
+
+def test_flows_estimated_at_load_serve_the_first_answers(turntable_bundle):
+    engine = Engine.load(turntable_bundle, ServingConfig(refine=True))
+    if engine.refine is None or engine.refine.mode != "pair":
+        engine = Engine(engine.bundle, ServingConfig(refine=True))
+        engine.refine = PAIR
+    added = engine.warm_flows()
+    assert added == len(engine.flow_cache) > 0
+    codes = engine.code_of_settings(between_captures(engine, seed=1))
+    engine.refined(codes, engine.decode(codes), PAIR)
+    assert len(engine.flow_cache) == added  # every pair those frames needed was already there
