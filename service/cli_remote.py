@@ -205,13 +205,18 @@ def cmd_serve(args) -> int:
 
 
 def cmd_worker(args) -> int:
+    from .errors import ServiceError
     from .settings import Settings
     from .worker import run_worker
 
     overrides = {"registry": args.registry} if args.registry else {}
     if args.id:
         overrides["worker_id"] = args.id
-    run_worker(Settings.load(**overrides))
+    try:
+        run_worker(Settings.load(**overrides))
+    except ServiceError as exc:  # the registry or the jobs' database cannot be opened
+        print(f"geotween worker: {exc.message}", file=sys.stderr)
+        return EXIT_SERVICE
     return EXIT_OK
 
 

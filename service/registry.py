@@ -342,13 +342,11 @@ class Registry:
 
     @contextlib.contextmanager
     def _pg_connect(self, *, write: bool, schema: bool) -> Iterator["_PgConnection"]:
-        import sqlalchemy
-
         try:
             raw = self._pg.raw_connection()
-        except sqlalchemy.exc.SQLAlchemyError as exc:
-            raise RegistryError(f"cannot open the registry index in PostgreSQL: {type(exc.orig or exc).__name__}: "
-                                f"{str(exc.orig or exc).splitlines()[0]}") from None
+        except Exception as exc:  # the driver's own errors (psycopg), or the pool's
+            raise RegistryError(f"cannot open the registry index in PostgreSQL: {type(exc).__name__}: "
+                                f"{str(exc).splitlines()[0] if str(exc) else ''}") from None
         con = _PgConnection(raw)
         try:
             if schema:  # one replica creates the tables; the others wait for it

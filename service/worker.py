@@ -29,6 +29,7 @@ def run_worker(settings: Settings, stop: threading.Event | None = None) -> None:
     services = Services(settings.model_copy(update={"run_jobs": True}))
     try:
         services.registry()
+        services.jobs.active()  # raises Unavailable while the jobs' database is down: no silent idle worker
         print(f"geotween worker {settings.worker_id}: running jobs ({settings.job_workers} at a time, "
               f"{settings.inference_workers} torch workers) from {settings.registry_root}", file=sys.stderr, flush=True)
         stop.wait()
