@@ -29,6 +29,8 @@ from .params import ParamSpace
 
 MANIFEST, WEIGHTS, BANK = "manifest.json", "weights.pt", "bank.npz"
 BANK_ARRAYS = ("codes", "params", "images", "holdout_codes", "holdout_params", "holdout_images")
+# the captures at their own size (long side capped at training), for frames at full size; optional
+FULL_ARRAYS = ("full_images", "holdout_full_images")
 
 
 @dataclass
@@ -40,6 +42,12 @@ class Bundle:
     model: Autoencoder
     arrays: dict[str, np.ndarray]
     path: Path | None = None  # the folder it was loaded from, where image arrays not in `arrays` live
+    stored: tuple[str, ...] = ()  # the arrays in its bank.npz (of a bundle on disk)
+
+    @property
+    def has_full(self) -> bool:
+        """Whether the captures are kept at their own size (larger than the model's)."""
+        return all(k in self.arrays or k in self.stored for k in FULL_ARRAYS)
 
     @property
     def space(self) -> ParamSpace:
@@ -63,7 +71,7 @@ class Bundle:
 
     def pixels(self, which: str = "images") -> np.ndarray:
         """Bank (or held-out) images as stored: uint8 (N, H, W, C); read from disk if not in memory."""
-        if which not in BANK_ARRAYS or "images" not in which:
+        if which not in BANK_ARRAYS + FULL_ARRAYS or "images" not in which:
             raise KeyError(f"{which}: not an image array of a bundle")
         if which in self.arrays:
             return self.arrays[which]
@@ -111,6 +119,8 @@ def _map_npz_member(path: Path, name: str) -> np.ndarray | None:
 
 
 def _to_uint8(images: np.ndarray) -> np.ndarray:
+    if images.dtype == np.uint8:
+        return images
     return np.round(np.clip(images, 0.0, 1.0) * 255.0).astype(np.uint8)
 
 
@@ -178,4 +188,5 @@ def load_bundle(path: str | Path) -> Bundle:
         if missing:
             raise BundleError(f"{path / BANK}: arrays missing: {missing}")
         arrays = {k: z[k] for k in z.files if "images" not in k}  # pixels stay on disk until asked for
-    return Bundle(manifest, model, arrays, path=path)
+        stored = tuple(z.files)
+    return Bundle(manifest, model, arrays, path=path, stored=stored)

@@ -112,6 +112,7 @@ class Frame:
     accepted: bool
     signals: dict[str, float] = field(default_factory=dict)
     detail: float | None = None  # share of pixels carried over from real bank images (None: not refined)
+    place: np.ndarray | None = None  # the settings it was made at (models.fullsize makes it larger there)
 
 
 class FrameCounts:
@@ -377,7 +378,8 @@ class Engine:
             raise ValueError("refine: this model version has no confidence fitted on frames without "
                              "detail transfer; ask with refine true, or train a new version")
         shown = self.settings_of(codes)
-        images, figures = self.render(codes, refine, shown if place is None else place)
+        place = shown if place is None else place
+        images, figures = self.render(codes, refine, place)
         sig = self.signals(codes, images, intended, shown, figures, names=names)
         conf = None if model is None else model.predict(sig)
         frames = []
@@ -386,7 +388,7 @@ class Engine:
             frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(shown[i]),
                                 confidence=c, accepted=c is not None and c >= min_confidence,
                                 signals=dict(zip(names, map(float, sig[i]))),
-                                detail=None if figures is None else float(figures["detail"][i])))
+                                detail=None if figures is None else float(figures["detail"][i]), place=place[i]))
         return frames
 
     def between(self, start: Endpoint, end: Endpoint, frames: int = 8, route: str = "geodesic",

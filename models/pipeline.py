@@ -23,6 +23,8 @@ def bank_arrays(result: TrainResult, scene: Scene) -> dict[str, np.ndarray]:
         out[prefix + "codes"] = encode(result.model, images)
         out[prefix + "params"] = scene.params[idx]
         out[prefix + "images"] = images
+        if scene.full is not None:  # the captures at their own size, for frames at full size
+            out[prefix + "full_images"] = scene.full[idx]
     return out
 
 

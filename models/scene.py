@@ -49,6 +49,7 @@ class Scene:
     params: np.ndarray
     files: list[str]
     root: Path
+    full: np.ndarray | None = None  # uint8 (N, H', W', C): the captures at their own size, when larger
 
     def __len__(self) -> int:
         return len(self.images)
@@ -215,9 +216,10 @@ def native_channels(img: Image.Image) -> int:
     return 1 if img.mode in _GRAY_MODES or img.mode.startswith("I;16") else 3
 
 
-def image_to_array(img: Image.Image, resolution: int, channels: int) -> np.ndarray:
-    """(resolution, resolution, channels) float32 in [0, 1]; non-square images are squashed."""
-    size = (resolution, resolution)
+def image_to_array(img: Image.Image, resolution: int | tuple[int, int], channels: int) -> np.ndarray:
+    """(resolution, resolution, channels) float32 in [0, 1]; non-square images are squashed. A
+    (width, height) pair resizes to that size instead."""
+    size = (resolution, resolution) if isinstance(resolution, int) else tuple(resolution)
     lanczos = Image.Resampling.LANCZOS
     if native_channels(img) == 1 and img.mode not in ("1", "L", "LA", "La"):
         # 16/32-bit integer or float gray: resize in float so no precision is lost
@@ -230,12 +232,24 @@ def image_to_array(img: Image.Image, resolution: int, channels: int) -> np.ndarr
         img = img.convert("RGBA")  # the palette may carry transparency, dropped below
     mode = "L" if channels == 1 else "RGB"  # RGBA and LA lose alpha; RGB to L uses ITU-R 601-2 luma
     arr = np.asarray(img.convert(mode).resize(size, lanczos), dtype=np.float32) / 255.0
-    return arr.reshape(resolution, resolution, channels)
+    return arr.reshape(size[1], size[0], channels)
+
+
+def full_size(width: int, height: int, resolution: int, max_size: int | None) -> tuple[int, int] | None:
+    """The size (width, height) captures of width x height are kept at: their own, the long side
+    capped at `max_size`; None when that is no larger than the model's square `resolution`."""
+    if not max_size:
+        return None
+    scale = min(1.0, max_size / max(width, height))
+    w, h = max(1, round(width * scale)), max(1, round(height * scale))
+    return None if max(w, h) <= resolution else (w, h)
 
 
 def load_scene(root: str | Path, resolution: int = 64, min_samples: int = 8, channels: int | None = None,
-               *, max_image_pixels: int = 40_000_000) -> Scene:
-    """Load a scene folder; every image is resized to resolution x resolution pixels.
+               *, max_image_pixels: int = 40_000_000, max_size: int | None = 1024) -> Scene:
+    """Load a scene folder; every image is resized to resolution x resolution pixels. Captures larger
+    than that are also kept at their own size (the first image's, aspect kept, long side capped at
+    `max_size`; None keeps none) as `full`, for frames at full size.
 
     channels=None keeps the images' own channel count (all must agree); 1 or 3 converts.
     Non-square images are resized straight to the square (aspect ratio not kept), so crop first
@@ -254,18 +268,22 @@ def load_scene(root: str | Path, resolution: int = 64, min_samples: int = 8, cha
         raise SceneError(f"has {len(files)} samples, fewer than min_samples={min_samples}", file=SAMPLES_FILE)
     wheres = [dict(file=SAMPLES_FILE, row=r, column=IMAGE_COLUMN, value=f) for r, f in zip(numbers, files)]
     paths = [_image_path(root, f, w) for f, w in zip(files, wheres)]
-    arrays, first = [], None
+    arrays, full, first, big = [], [], None, None
     for path, where in zip(paths, wheres):
         with _open_image(path, where, max_image_pixels) as img:
             found = native_channels(img)
             if first is None:
                 first, want = where, channels or found
+                big = full_size(img.width, img.height, resolution, max_size)
             elif channels is None and found != want:
                 raise SceneError(f"has {found} channel(s) but {first['value']!r} (row {first['row']}) has "
                                  f"{want}; pass channels=1 or 3 to convert", **where)
             arrays.append(image_to_array(img, resolution, want))
+            if big is not None:
+                full.append(np.round(image_to_array(img, big, want) * 255.0).astype(np.uint8))
     images = np.stack(arrays).astype(np.float32, copy=False)
-    return Scene(name=name, space=space, images=images, params=params, files=files, root=root)
+    return Scene(name=name, space=space, images=images, params=params, files=files, root=root,
+                 full=np.stack(full) if full else None)
 
 
 # -- writing ---------------------------------------------------------------------------------

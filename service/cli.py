@@ -52,7 +52,7 @@ def cmd_train(args) -> int:
 
     entry = train_into_registry(Path(args.scene), args.name, _registry(args), resolution=args.resolution,
                                 latent_dim=args.latent_dim, steps=args.steps, budget=args.budget_seconds,
-                                seed=args.seed, tau=args.tau)
+                                seed=args.seed, tau=args.tau, max_size=args.max_size or None)
     print(f"registered {entry.name}@{entry.version}")
     _print_json(entry.metrics)
     _warn_calibration(entry)
@@ -284,6 +284,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("scene")
     s.add_argument("--name", required=True)
     s.add_argument("--resolution", type=int, default=64, help="pixels per side (power of two)")
+    s.add_argument("--max-size", type=int, default=1024,
+                   help="keep the captures at their own size, long side capped at this many pixels, for frames at "
+                        "full size (0: keep none; default 1024)")
     s.add_argument("--latent-dim", type=int, default=None, help="default: parameters + periodic parameters")
     s.add_argument("--steps", type=int, default=None)
     s.add_argument("--budget-seconds", type=float, default=None, help="wall-clock cap on training")

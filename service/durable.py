@@ -206,6 +206,7 @@ def _train(spec: dict) -> str:
     building.mkdir(parents=True)
     rt.pool.call(build_bundle, spec["scene"], building, spec["name"], resolution=spec["resolution"],
                  steps=spec["steps"], budget=spec["budget"], seed=spec["seed"], tau=spec["tau"], quiet=True,
+                 max_size=spec.get("max_size", 1024),
                  on_step=_Watch(job), checkpoint=Checkpoint(folder / "checkpoint.pt", rt.checkpoint_every),
                  inference=False)
     building.rename(bundle)

@@ -286,6 +286,8 @@ class TrainingRequest(_Request):
     budget_seconds: float | None = Field(None, gt=0, description="wall-clock cap on training, seconds")
     seed: int = Field(0, ge=0)
     resolution: Literal[16, 32, 64, 128, 256] = Field(64, description="pixels per side")
+    max_size: int = Field(1024, ge=0, le=8192, description="keep the captures at their own size, long side capped "
+                                                           "at this many pixels, for frames at full size (0: none)")
     tau: float = Field(0.90, gt=0.0, lt=1.0, description="the SSIM against the true view the model's confidence "
                                                         "will speak about (a frame is faithful at or above it)")
 

@@ -52,7 +52,7 @@ def start_training(key: ApiKeyDep, body: TrainingRequest, services: ServicesDep,
     budget = body.budget_seconds if body.budget_seconds is not None else s.max_train_seconds
 
     spec = {"scene": str(scene), "name": name, "resolution": body.resolution, "steps": body.steps,
-            "budget": budget, "seed": body.seed, "tau": body.tau}
+            "budget": budget, "seed": body.seed, "tau": body.tau, "max_size": body.max_size or None}
     job = services.jobs.submit("training", spec, total=body.steps or 0, model=name)
     note(request, model=name, job=job["id"], key=key)
     return JSONResponse(job, status_code=202, headers={"Location": f"/v1/jobs/{job['id']}"})

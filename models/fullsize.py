@@ -1,0 +1,124 @@
+"""Frames at the captures' own size. The model works small: it decides where a frame lies, makes it at
+its working size and judges it there. The pixels of the large frame come from the two real captures
+around it, at their own size:
+
+    large = up(F) + agree * (B - up(down(B)))
+
+F is the frame as served at the working size, B the two full-size captures moved to the frame's
+place and blended (models.pairs, with the flows estimated at the working size and scaled up), `up`
+bicubic and `down` area resampling, and `agree` the share where B, brought down to the working size,
+matches F. The large frame keeps F's content (what the confidence judged) and takes from the
+captures only the detail F cannot hold, and only where they agree with it; elsewhere it is F
+enlarged. A frame is still synthesized, not captured.
+"""
+from __future__ import annotations
+
+import cv2
+import numpy as np
+
+from . import pairs as lpairs
+
+AGREE = 0.04   # mean absolute difference (0-1 scale) at working size at which the captures' detail fades to 1/e
+
+
+def long_side(size: str | int, working: int, full: tuple[int, int] | None) -> int:
+    """The long side in pixels of frames asked for with `size` ("working", "full", or pixels)."""
+    top = working if full is None else max(full)
+    if size == "working":
+        return working
+    if size == "full":
+        return top
+    if isinstance(size, bool) or not isinstance(size, (int, np.integer)) or not 8 <= size <= top:
+        raise ValueError(f"size: {size!r} is out of range; allowed 'working', 'full' or 8 to {top} pixels "
+                         f"(the long side of this model's captures)")
+    return int(size)
+
+
+def resize(images: np.ndarray, width: int, height: int, *, enlarge: int = cv2.INTER_CUBIC) -> np.ndarray:
+    """(N, H, W, C) float images to (N, height, width, C): area resampling down, `enlarge` up."""
+    images = np.asarray(images, dtype=np.float32)
+    n, h, w, c = images.shape
+    if (w, h) == (width, height):
+        return images
+    how = cv2.INTER_AREA if width <= w and height <= h else enlarge
+    out = np.stack([cv2.resize(img, (width, height), interpolation=how) for img in images])
+    return np.clip(out.reshape(n, height, width, c), 0.0, 1.0)
+
+
+def _scaled(flows: lpairs.PairFlows, width: int, height: int) -> lpairs.PairFlows:
+    h, w = flows.ab.shape[:2]
+    gain = np.array([width / w, height / h], dtype=np.float32)
+
+    def up(a: np.ndarray, scale: np.ndarray | None = None) -> np.ndarray:
+        out = cv2.resize(a, (width, height), interpolation=cv2.INTER_LINEAR).reshape(height, width, a.shape[-1])
+        return out * scale if scale is not None else out
+
+    return lpairs.PairFlows(up(flows.ab, gain), up(flows.ba, gain), up(flows.seen_a), up(flows.seen_b))
+
+
+def full_captures(engine, idx: np.ndarray) -> np.ndarray:
+    """Float images in [0, 1] of capture indices at the captures' own size (as engine.captures)."""
+    mapped = engine.__dict__.setdefault("_full_pixels", {})
+    for key in ("full_images", "holdout_full_images"):
+        if key not in mapped:
+            mapped[key] = engine.bundle.mapped_pixels(key)
+    idx = np.asarray(idx, dtype=np.int64)
+    n = len(engine.bundle.codes)
+    bank, held = mapped["full_images"], mapped["holdout_full_images"]
+    out = np.empty(idx.shape + bank.shape[1:], dtype=np.uint8)
+    inside = idx < n
+    out[inside] = bank[idx[inside]]
+    out[~inside] = held[idx[~inside] - n]
+    return out.astype(np.float32) / 255.0
+
+
+def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.ndarray:
+    """The (N, h, w, C) working-size frames `frames`, made at settings `places` (N, P), at a long
+    side of `long` pixels (the captures' aspect), as the module docstring says."""
+    frames = np.asarray(frames, dtype=np.float32)
+    n, h, w, c = frames.shape
+    if not engine.bundle.has_full or len(frames) == 0:  # nothing larger was kept: the frames enlarged
+        return resize(frames, long, long)
+    full_h, full_w = engine.bundle.mapped_pixels("full_images").shape[1:3]
+    scale = long / max(full_w, full_h)
+    width, height = max(1, round(full_w * scale)), max(1, round(full_h * scale))
+    u = (engine.space.wrap(np.asarray(places, dtype=np.float64)) - engine.space.lo) / engine.scale
+    bracket = engine.bracketer(u)
+    single = (bracket.first == bracket.second) | (bracket.at <= 1e-6) | (bracket.at >= 1 - 1e-6)
+    method = engine.refine.flow if engine.refine is not None else "dis"
+    used = sorted({int(k) for k in np.concatenate([bracket.first, bracket.second])})
+    big = dict(zip(used, resize(full_captures(engine, np.asarray(used)), width, height)))
+    small = dict(zip(used, engine.captures(np.asarray(used))))
+    blended = np.empty((n, height, width, c), dtype=np.float32)
+    for f in range(n):
+        i, j, at = int(bracket.first[f]), int(bracket.second[f]), float(bracket.at[f])
+        if single[f]:
+            blended[f] = big[j if at >= 0.5 else i]
+            continue
+        key = (method, i, j)
+        flows = engine.flow_cache.get(key)
+        if flows is None:
+            flows = lpairs.pair_flows(small[i], small[j], method)
+            engine.flow_cache.put(key, flows)
+        wa, va, wb, vb = lpairs.moved(big[i], big[j], at, _scaled(flows, width, height))
+        wt_a, wt_b = (1.0 - at) * va, at * vb
+        blended[f] = (wt_a * wa + wt_b * wb) / np.maximum(wt_a + wt_b, 1e-6)
+    base = resize(frames, width, height)
+    back = resize(blended, w, h)
+    agree = np.exp(-(np.abs(back - frames).mean(axis=-1, keepdims=True) / AGREE) ** 2)
+    agree = resize(agree, width, height, enlarge=cv2.INTER_LINEAR)
+    detail = blended - resize(back, width, height)
+    return np.clip(base + agree * detail, 0.0, 1.0)
+
+
+def sized(engine, frames: list, size: str | int = "full") -> list:
+    """`frames` (engine.Frame, made at the working size) with their images at `size` ("working",
+    "full", or a long side in pixels up to the captures'); each frame's confidence is unchanged."""
+    full = engine.bundle.mapped_pixels("full_images").shape[1:3][::-1] if engine.bundle.has_full else None
+    long = long_side(size, engine.manifest.model_config.resolution, full)
+    if long == engine.manifest.model_config.resolution or not frames:
+        return frames
+    images = enlarge(engine, np.stack([f.image for f in frames]), np.stack([f.place for f in frames]), long)
+    for f, img in zip(frames, images):
+        f.image = img
+    return frames
