@@ -90,6 +90,18 @@ class Bundle:
         return self.pixels(which) if mapped is None else mapped
 
 
+def full_capture_size(path: str | Path) -> tuple[int, int] | None:
+    """(width, height) of the captures a bundle folder keeps at full size; None when it keeps none."""
+    try:
+        mapped = _map_npz_member(Path(path) / BANK, FULL_ARRAYS[0])
+    except KeyError:
+        return None
+    if mapped is None:
+        with np.load(Path(path) / BANK, allow_pickle=False) as z:
+            mapped = z[FULL_ARRAYS[0]]
+    return int(mapped.shape[2]), int(mapped.shape[1])
+
+
 def _map_npz_member(path: Path, name: str) -> np.ndarray | None:
     """Memory map of an uncompressed .npz member (np.savez stores members uncompressed), or None."""
     import zipfile

@@ -18,7 +18,7 @@ import numpy as np
 
 from . import pairs as lpairs
 
-AGREE = 0.04   # mean absolute difference (0-1 scale) at working size at which the captures' detail fades to 1/e
+AGREE = 0.1    # mean absolute difference (0-1 scale) at working size at which the captures' detail fades to 1/e
 
 
 def long_side(size: str | int, working: int, full: tuple[int, int] | None) -> int:
@@ -32,6 +32,15 @@ def long_side(size: str | int, working: int, full: tuple[int, int] | None) -> in
         raise ValueError(f"size: {size!r} is out of range; allowed 'working', 'full' or 8 to {top} pixels "
                          f"(the long side of this model's captures)")
     return int(size)
+
+
+def frame_size(size: str | int, working: int, full: tuple[int, int] | None) -> tuple[int, int]:
+    """(width, height) of frames asked for with `size` (the captures' aspect when they are kept)."""
+    long = long_side(size, working, full)
+    if full is None:
+        return long, long
+    scale = long / max(full)
+    return max(1, round(full[0] * scale)), max(1, round(full[1] * scale))
 
 
 def resize(images: np.ndarray, width: int, height: int, *, enlarge: int = cv2.INTER_CUBIC) -> np.ndarray:
@@ -80,35 +89,41 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
     if not engine.bundle.has_full or len(frames) == 0:  # nothing larger was kept: the frames enlarged
         return resize(frames, long, long)
     full_h, full_w = engine.bundle.mapped_pixels("full_images").shape[1:3]
-    scale = long / max(full_w, full_h)
-    width, height = max(1, round(full_w * scale)), max(1, round(full_h * scale))
+    width, height = frame_size(long, w, (full_w, full_h))
     u = (engine.space.wrap(np.asarray(places, dtype=np.float64)) - engine.space.lo) / engine.scale
     bracket = engine.bracketer(u)
     single = (bracket.first == bracket.second) | (bracket.at <= 1e-6) | (bracket.at >= 1 - 1e-6)
-    method = engine.refine.flow if engine.refine is not None else "dis"
+    # the pair flows of a model that makes frames from pairs (shared with its cache), else DIS
+    method = engine.refine.flow if engine.refine is not None and engine.refine.mode == "pair" else "dis"
     used = sorted({int(k) for k in np.concatenate([bracket.first, bracket.second])})
     big = dict(zip(used, resize(full_captures(engine, np.asarray(used)), width, height)))
     small = dict(zip(used, engine.captures(np.asarray(used))))
-    blended = np.empty((n, height, width, c), dtype=np.float32)
+    base = resize(frames, width, height)
+    out = np.empty((n, height, width, c), dtype=np.float32)
     for f in range(n):
         i, j, at = int(bracket.first[f]), int(bracket.second[f]), float(bracket.at[f])
         if single[f]:
-            blended[f] = big[j if at >= 0.5 else i]
-            continue
-        key = (method, i, j)
-        flows = engine.flow_cache.get(key)
-        if flows is None:
-            flows = lpairs.pair_flows(small[i], small[j], method)
-            engine.flow_cache.put(key, flows)
-        wa, va, wb, vb = lpairs.moved(big[i], big[j], at, _scaled(flows, width, height))
-        wt_a, wt_b = (1.0 - at) * va, at * vb
-        blended[f] = (wt_a * wa + wt_b * wb) / np.maximum(wt_a + wt_b, 1e-6)
-    base = resize(frames, width, height)
-    back = resize(blended, w, h)
-    agree = np.exp(-(np.abs(back - frames).mean(axis=-1, keepdims=True) / AGREE) ** 2)
-    agree = resize(agree, width, height, enlarge=cv2.INTER_LINEAR)
-    detail = blended - resize(back, width, height)
-    return np.clip(base + agree * detail, 0.0, 1.0)
+            moved = [(big[j if at >= 0.5 else i], 1.0)]
+        else:
+            key = (method, i, j)
+            flows = engine.flow_cache.get(key)
+            if flows is None:
+                flows = lpairs.pair_flows(small[i], small[j], method)
+                engine.flow_cache.put(key, flows)
+            wa, va, wb, vb = lpairs.moved(big[i], big[j], at, _scaled(flows, width, height))
+            moved = [(wa, (1.0 - at) * va), (wb, at * vb)]
+        # each moved capture gives its own detail, where it agrees with the served frame:
+        # large = up(F) + sum_k share_k * agree_k * detail_k / sum_k share_k
+        total = np.zeros((height, width, c), np.float32)
+        shares = np.zeros((height, width, 1), np.float32)
+        for img, share in moved:
+            back = resize(img[None], w, h)
+            agree = np.exp(-(np.abs(back[0] - frames[f]).mean(axis=-1, keepdims=True) / AGREE) ** 2)
+            total += share * resize(agree[None], width, height, enlarge=cv2.INTER_LINEAR)[0] * (
+                img - resize(back, width, height)[0])
+            shares += share
+        out[f] = base[f] + total / np.maximum(shares, 1e-6)
+    return np.clip(out, 0.0, 1.0)
 
 
 def sized(engine, frames: list, size: str | int = "full") -> list:

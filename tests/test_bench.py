@@ -41,7 +41,8 @@ def test_quick_run_measures_every_stage(tmp_path):
     assert "Notes." in text and "--quick" in text
     for heading in ("Quality at 16 px", "Quality at 32 px", "Colour relief tile at 16 px", "Photo window at 16 px",
                     "Turntable at 16 px", "Camera move at 16 px", "Turntable from scattered settings at 16 px",
-                    "Latency and throughput", "Route search", "Service memory"):
+                    "Latency and throughput", "Route search", "Service memory", "Fill throughput as jobs",
+                    "Frames at full size", "Full-size throughput", "with the full-size captures"):
         assert heading in text, heading
     tables = 7  # demo at two sizes, colour tile, photo window, turntable, camera move, scattered turntable
     # every method row of the quality tables carries numbers
