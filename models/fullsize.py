@@ -37,7 +37,7 @@ def long_side(size: str | int, working: int, full: tuple[int, int] | None) -> in
 def frame_size(size: str | int, working: int, full: tuple[int, int] | None) -> tuple[int, int]:
     """(width, height) of frames asked for with `size` (the captures' aspect when they are kept)."""
     long = long_side(size, working, full)
-    if full is None:
+    if full is None or long == working:  # frames at the working size are the model's own square
         return long, long
     scale = long / max(full)
     return max(1, round(full[0] * scale)), max(1, round(full[1] * scale))

@@ -19,7 +19,8 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Literal, Mapping, Sequence
 
 from ..models.engine import FrameCounts
-from .imaging import encode_png, png_base64
+from ..models.fullsize import sized
+from .imaging import encode_frame, png_base64
 from .schemas import BetweenManifestOut, BetweenOut, FillManifestOut, FillOut
 
 if TYPE_CHECKING:
@@ -32,17 +33,18 @@ _BODY = {("between", False): BetweenOut, ("between", True): BetweenManifestOut,
          ("fill", False): FillOut, ("fill", True): FillManifestOut}
 
 
-def frame_file(kind: Kind, index: int) -> str:
-    """The file name of frame `index` (1-based) of a between or fill answer."""
-    return f"{_PREFIX[kind]}_{index:04d}.png"
+def frame_file(kind: Kind, index: int, fmt: str = "png") -> str:
+    """The file name of frame `index` (1-based) of a between or fill answer in format `fmt`."""
+    return f"{_PREFIX[kind]}_{index:04d}.{'jpg' if fmt == 'jpeg' else 'png'}"
 
 
 @dataclass
 class EncodedFrame:
     """One answered frame: its wire fields except the picture (keys as in FrameOut / FillFrameOut),
-    and the picture as PNG bytes."""
+    and the picture's file bytes (PNG, or JPEG when asked) with its width and height."""
     fields: dict
     png: bytes
+    size: tuple[int, int] = (0, 0)
 
     @property
     def accepted(self) -> bool:
@@ -62,6 +64,7 @@ class Answer(FrameCounts):
     start_code: list[float] | None = None
     end_code: list[float] | None = None
     tau: float | None = None                       # the SSIM threshold the confidences speak about
+    format: str = "png"                            # of every frame's picture: "png" or "jpeg"
     ends_placed: bool | None = None                # between only: False when an image end could not be placed
 
 
@@ -69,47 +72,67 @@ def _floats(values) -> list[float]:
     return [float(v) for v in values]
 
 
-def _frame(f, index: int, extra: dict) -> EncodedFrame:
+def _frame(f, index: int, extra: dict, fmt: str = "png", quality: int = 90) -> EncodedFrame:
     fields = {"index": index, **extra,
               "confidence": None if f.confidence is None else float(f.confidence), "accepted": bool(f.accepted),
               "params": {str(n): float(v) for n, v in f.params.items()},
               "detail": None if f.detail is None else float(f.detail)}
-    return EncodedFrame(fields, encode_png(f.image))
+    height, width = f.image.shape[:2]
+    return EncodedFrame(fields, encode_frame(f.image, fmt, quality), (int(width), int(height)))
 
 
-def between_answer(ans, model: str, version: int) -> Answer:
-    """An engine.Answer as an Answer (PNG encoding is CPU work: call it on the inference pool)."""
-    frames = [_frame(f, k + 1, {"t": float(f.t), "code": _floats(code)})
+def between_answer(ans, model: str, version: int, fmt: str = "png", quality: int = 90) -> Answer:
+    """An engine.Answer as an Answer (encoding is CPU work: call it on the inference pool)."""
+    frames = [_frame(f, k + 1, {"t": float(f.t), "code": _floats(code)}, fmt, quality)
               for k, (f, code) in enumerate(zip(ans.frames, ans.codes))]
     ends = getattr(ans, "ends", None)
     return Answer(kind="between", model=model, version=version, frames=frames, route=ans.route,
                   start_params=dict(ans.start_params), end_params=dict(ans.end_params),
                   start_code=None if ends is None else _floats(ends[0]),
                   end_code=None if ends is None else _floats(ends[1]), tau=getattr(ans, "tau", None),
-                  ends_placed=bool(getattr(ans, "ends_placed", True)))
+                  ends_placed=bool(getattr(ans, "ends_placed", True)), format=fmt)
 
 
-def fill_frames(frames: Sequence, targets: Sequence[dict], *, offset: int = 0) -> list[EncodedFrame]:
+def fill_frames(frames: Sequence, targets: Sequence[dict], *, offset: int = 0, fmt: str = "png",
+                quality: int = 90) -> list[EncodedFrame]:
     """Engine frames answering targets[offset:offset + len(frames)] (targets are that slice)."""
-    return [_frame(f, offset + k + 1, {"target": {str(n): float(v) for n, v in targets[k].items()}})
+    return [_frame(f, offset + k + 1, {"target": {str(n): float(v) for n, v in targets[k].items()}}, fmt, quality)
             for k, f in enumerate(frames)]
 
 
 def fill_chunk(cache: "ModelCache", entry: "ModelVersion", targets: Sequence[Mapping[str, float]],
-               min_confidence: float, offset: int = 0, refine: bool = True) -> list[EncodedFrame]:
-    """Frames for targets[offset:offset+len], PNG-encoded; runs on the inference pool."""
+               min_confidence: float, offset: int = 0, refine: bool = True, size: str | int = "full",
+               fmt: str = "png", quality: int = 90) -> list[EncodedFrame]:
+    """Frames for targets[offset:offset+len] at `size`, encoded; runs on the inference pool."""
     engine = cache.engine(entry)
-    return fill_frames(engine.fill(targets, min_confidence=min_confidence, refine=refine), targets, offset=offset)
+    frames = sized(engine, engine.fill(targets, min_confidence=min_confidence, refine=refine), size)
+    return fill_frames(frames, targets, offset=offset, fmt=fmt, quality=quality)
 
 
-def fill_answer(frames: list[EncodedFrame], model: str, version: int, tau: float | None = None) -> Answer:
-    return Answer(kind="fill", model=model, version=version, frames=frames, tau=tau)
+def fill_answer(frames: list[EncodedFrame], model: str, version: int, tau: float | None = None,
+                fmt: str = "png") -> Answer:
+    return Answer(kind="fill", model=model, version=version, frames=frames, tau=tau, format=fmt)
 
 
 def from_wire(body: FillOut) -> Answer:
-    """A fill's JSON answer (as the client parses it) back into an Answer, its PNGs byte for byte."""
-    return fill_answer([EncodedFrame(f.model_dump(exclude={"image"}), f.png()) for f in body.frames], body.model,
-                       body.version, body.tau)
+    """A fill's JSON answer (as the client parses it) back into an Answer, its pictures byte for byte."""
+    frames = []
+    for f in body.frames:
+        data = f.png()
+        # a service from before frames at full size sends no `size`: the picture's own header says it
+        size = tuple(body.size) if body.size is not None else _picture_size(data)
+        frames.append(EncodedFrame(f.model_dump(exclude={"image"}), data, size))
+    return fill_answer(frames, body.model, body.version, body.tau, body.format)
+
+
+def _picture_size(data: bytes) -> tuple[int, int]:
+    """(width, height) of a PNG or JPEG file, from its header (PIL opens lazily: nothing is decoded)."""
+    import io
+
+    from PIL import Image
+
+    with Image.open(io.BytesIO(data)) as img:
+        return int(img.width), int(img.height)
 
 
 def to_wire(answer: Answer, files: Sequence[str | None] | None = None, *, latent_map: str | None = None
@@ -123,8 +146,9 @@ def to_wire(answer: Answer, files: Sequence[str | None] | None = None, *, latent
         if len(files) != len(answer.frames):
             raise ValueError(f"files: {len(files)} names for {len(answer.frames)} frames")
         frames = [{**f.fields, "file": name} for f, name in zip(answer.frames, files)]
+    size = answer.frames[0].size if answer.frames else (0, 0)
     body = {"model": answer.model, "version": answer.version, "tau": answer.tau, "frames": frames,
-            "accepted": answer.accepted, "rejected": answer.rejected}
+            "accepted": answer.accepted, "rejected": answer.rejected, "size": size, "format": answer.format}
     if answer.kind == "between":
         body.update(route=answer.route, start_params=answer.start_params, end_params=answer.end_params,
                     start_code=answer.start_code, end_code=answer.end_code,

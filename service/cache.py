@@ -12,8 +12,9 @@ from collections import OrderedDict
 from pathlib import Path
 from typing import Callable
 
-from ..models.bundle import read_manifest
+from ..models.bundle import full_capture_size, read_manifest
 from ..models.engine import Engine
+from ..models.fullsize import frame_size
 from ..models.manifest import Manifest
 from ..models.params import ParamSpace
 from .registry import ModelVersion, Registry, RegistryError
@@ -35,6 +36,7 @@ class ModelCache:
         self._key_locks: dict[tuple[str, int, str], threading.Lock] = {}
         self._versions: dict[tuple[str, int | None], ModelVersion] = {}
         self._manifests: dict[tuple[str, int, str], Manifest] = {}
+        self._full_sizes: dict[tuple[str, int, str], tuple[int, int] | None] = {}
         self._generation: int | None = None
         self.loads = 0  # engines built since start (a reload per request would show here)
         self.warm = warm
@@ -111,6 +113,18 @@ class ModelCache:
                     self._manifests.clear()
                 self._manifests[key] = hit
         return hit
+
+    def frame_size(self, entry: ModelVersion, size: str | int) -> tuple[int, int]:
+        """(width, height) of this version's frames at `size` ("working", "full", or a long side);
+        ValueError for a size the version cannot make."""
+        key = (entry.name, entry.version, entry.hash)
+        with self._lock:
+            full = self._full_sizes.get(key, False)
+        if full is False:
+            full = full_capture_size(entry.path)
+            with self._lock:
+                self._full_sizes[key] = full
+        return frame_size(size, self.manifest(entry).model_config.resolution, full)
 
     def space(self, entry: ModelVersion) -> ParamSpace:
         """The model's parameter space, without loading its weights."""

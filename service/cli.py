@@ -16,7 +16,10 @@ from .cli_common import (
     NO_REFINE_HELP,
     UsageError,
     add_global_options,
+    add_output_options,
+    check_size,
     configure_torch,
+    output_options,
     registry_of,
 )
 from .cli_remote import add_commands
@@ -171,19 +174,23 @@ def cmd_between(args) -> int:
         raise UsageError(f"--frames: {args.frames} is out of range; expected >= 1")
     if not 0.0 <= args.min_confidence <= 1.0:
         raise UsageError(f"--min-confidence: {args.min_confidence} is outside [0, 1]")
+    size, fmt, quality = output_options(args)
     engine, entry = _local_engine(args)
+    check_size(engine, size)
     start, end = parse_end(args.start, engine), parse_end(args.end, engine)
     answer = engine.between(start, end, frames=args.frames, route=args.route, min_confidence=args.min_confidence,
                             refine=not args.no_refine)
+    from ..models.fullsize import sized
     from ..models.latent_map import engine_map_png
     from .answers import between_answer, frame_file, manifest_json, to_wire
 
-    wire = between_answer(answer, entry.name, entry.version)  # the PNGs and fields the service would send
+    sized(engine, answer.frames, size)  # judged at the working size; the pictures at `size`, as the service does
+    wire = between_answer(answer, entry.name, entry.version, fmt, quality)  # the files and fields it would send
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     files = []
     for f in wire.frames:
-        name = frame_file("between", f.fields["index"]) if f.accepted or args.keep_rejected else None
+        name = frame_file("between", f.fields["index"], fmt) if f.accepted or args.keep_rejected else None
         if name:
             (out / name).write_bytes(f.png)
         files.append(name)
@@ -302,13 +309,15 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("start", help="image path, or settings such as lamp_azimuth=30,lamp_elevation=40")
     s.add_argument("end", help="image path, or settings")
     s.add_argument("--frames", type=int, default=8, help="in-between frames, ends excluded")
-    s.add_argument("--out", required=True, help="folder for the PNG frames and manifest.json")
+    s.add_argument("--out", required=True, help="folder for the frames (PNG, or JPEG with --format jpeg) and "
+                                                "manifest.json")
     s.add_argument("--route", choices=["geodesic", "straight"], default="geodesic")
     s.add_argument("--min-confidence", type=float, default=0.5, help="frames below it are rejected")
     s.add_argument("--keep-rejected", action="store_true", help="write rejected frames too (marked in the manifest)")
     s.add_argument("--strict", action="store_true", help="exit 3 when any frame is rejected")
     s.add_argument("--version", type=int, default=None)
     s.add_argument("--no-refine", action="store_true", help=NO_REFINE_HELP)
+    add_output_options(s)
     s.set_defaults(func=cmd_between)
 
     s = sub.add_parser("eval", help="quality report against a truth set, with baselines")

@@ -2,8 +2,9 @@
 
 `fill NAME TARGETS.csv --out DIR` answers one frame per CSV row (header = parameter names) with
 the local engine from the registry, or with a running service when --url is given; it writes the
-accepted frames as PNG (target_0001.png, ...) plus report.csv and report.json (confidence and detail
-share per target; report.json is the manifest of the service's ZIP answer, schemas.FillManifestOut).
+accepted frames at --size as PNG (target_0001.png, ...) or, with --format jpeg, JPEG (target_0001.jpg,
+...) plus report.csv and report.json (confidence and detail share per target; report.json is the
+manifest of the service's ZIP answer, schemas.FillManifestOut).
 Exit 2 on bad input.
 """
 from __future__ import annotations
@@ -16,7 +17,16 @@ import sys
 from pathlib import Path
 from typing import Callable, Mapping, Sequence, TextIO
 
-from .cli_common import EXIT_BAD_INPUT, EXIT_OK, NO_REFINE_HELP, UsageError, registry_of
+from .cli_common import (
+    EXIT_BAD_INPUT,
+    EXIT_OK,
+    NO_REFINE_HELP,
+    UsageError,
+    add_output_options,
+    check_size,
+    output_options,
+    registry_of,
+)
 
 NOTICE = "frames are synthesized by a learned model, not captured"
 EXIT_SERVICE = 1  # the service could not be reached, or failed on its side
@@ -91,9 +101,14 @@ def read_targets(path: str | Path, *, max_targets: int = 100_000) -> tuple[list[
 # -- fill ---------------------------------------------------------------------------------------
 def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable[[int, int], None],
                 chunk: int = 32):
-    """The fill answered by the local engine, as the service would answer it (answers.Answer)."""
+    """The fill answered by the local engine, as the service would answer it (answers.Answer), its
+    frames judged at the working size and their pictures at --size."""
+    from ..models.fullsize import sized
     from .answers import fill_answer, fill_frames
+
+    size, fmt, quality = output_options(args)
     engine, entry = open_engine(registry_of(args), args.name, args.version)
+    check_size(engine, size)
     for i, target in enumerate(targets):  # every bad row is named before any work starts
         try:
             engine.space.vector(target)
@@ -103,31 +118,34 @@ def _fill_local(args, targets: Sequence[Mapping[str, float]], progress: Callable
     progress(0, len(targets))
     for lo in range(0, len(targets), chunk):
         part = targets[lo:lo + chunk]
-        frames += fill_frames(engine.fill(part, min_confidence=args.min_confidence, refine=not args.no_refine),
-                              part, offset=lo)
+        made = sized(engine, engine.fill(part, min_confidence=args.min_confidence, refine=not args.no_refine), size)
+        frames += fill_frames(made, part, offset=lo, fmt=fmt, quality=quality)
         progress(len(frames), len(targets))
-    return fill_answer(frames, entry.name, entry.version, engine.tau)
+    return fill_answer(frames, entry.name, entry.version, engine.tau, fmt)
 
 
 def _fill_remote(args, targets: Sequence[Mapping[str, float]], progress: Callable[[int, int], None]):
-    """The fill answered by a running service (its PNGs kept byte for byte)."""
+    """The fill answered by a running service (its files kept byte for byte). Only the options given
+    are sent: the service's defaults are the command's."""
     from .answers import from_wire
     from .client import Client
 
+    output_options(args)  # a bad --quality is named before anything is sent
     with Client(args.url) as client:
         return from_wire(client.fill(args.name, targets, min_confidence=args.min_confidence, version=args.version,
-                                     progress=progress, refine=not args.no_refine))
+                                     progress=progress, refine=not args.no_refine, size=args.size,
+                                     format=args.format, quality=args.quality))
 
 
 def _write_fill(out: Path, names: Sequence[str], answer, *, keep_rejected: bool = False):
-    """Accepted frames as PNG, report.json (the ZIP answer's manifest, a FillManifestOut) and report.csv;
-    returns the manifest."""
+    """Accepted frames (PNG, or .jpg for a JPEG answer), report.json (the ZIP answer's manifest, a
+    FillManifestOut) and report.csv; returns the manifest."""
     from .answers import frame_file, manifest_json, to_wire
 
     out.mkdir(parents=True, exist_ok=True)
     files = []
     for f in answer.frames:
-        file = frame_file("fill", f.fields["index"]) if f.accepted or keep_rejected else None
+        file = frame_file("fill", f.fields["index"], answer.format) if f.accepted or keep_rejected else None
         if file:
             (out / file).write_bytes(f.png)
         files.append(file)
@@ -236,10 +254,12 @@ def add_commands(subparsers) -> None:
     s = subparsers.add_parser("fill", help="frames at the settings of each CSV row (missing views)")
     s.add_argument("name", help="model name")
     s.add_argument("targets", help="CSV file; header = parameter names, one target per row")
-    s.add_argument("--out", required=True, help="folder for the PNG frames, report.csv and report.json")
+    s.add_argument("--out", required=True, help="folder for the frames (PNG, or JPEG with --format jpeg), "
+                                                "report.csv and report.json")
     s.add_argument("--url", default=None, help="use a running service instead of the local registry")
     s.add_argument("--min-confidence", type=float, default=0.5, help="frames below it are rejected")
     s.add_argument("--keep-rejected", action="store_true", help="write rejected frames too (marked in the report)")
     s.add_argument("--version", type=int, default=None, help="model version (default: the latest)")
     s.add_argument("--no-refine", action="store_true", help=NO_REFINE_HELP)
+    add_output_options(s)
     s.set_defaults(func=cmd_fill)

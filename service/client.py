@@ -1,10 +1,14 @@
 """Typed HTTP client of the geotween service (httpx).
 
+    from geotween.service.answers import frame_file
+
     with Client("http://127.0.0.1:8000") as c:
-        answer = c.between("relief-tile", {"lamp_azimuth": 30, "lamp_elevation": 40}, "end.png", frames=8)
+        answer = c.between("relief-tile", {"lamp_azimuth": 30, "lamp_elevation": 40}, "end.png", frames=8,
+                           size="full", format="jpeg", quality=90)
         for f in answer.frames:
-            if f.accepted:
-                f.pil().save(f"frame_{f.index:04d}.png")   # f.array(): (H, W, C) float32 in [0, 1]
+            if f.accepted:   # frame_0001.jpg, ...: answers.frame_file names files as the service's ZIP does
+                Path(frame_file("between", f.index, answer.format)).write_bytes(f.png())
+        # f.pil(), f.array(): (H, W, C) float32 in [0, 1]; answer.size: [width, height] of every frame
 
 Answers are parsed into the service's own wire models (service/schemas.py, re-exported here):
 BetweenOut, FillOut, ModelOut, JobOut, LatentMapOut, ... are what /openapi.json documents. Keys a
@@ -12,6 +16,11 @@ newer server adds are ignored; an answer that breaks the contract raises ClientE
 'invalid_answer'. Every failure raises ClientError(status, code, message, field); status is None
 when the server could not be reached. Pass `transport=httpx.MockTransport(handler)` to test
 without a server. Frames are synthesized by a learned model, not captured.
+
+`size` ("working", "full" or a long side in pixels), `format` ("png" or "jpeg") and `quality`
+(1-100, JPEG only) are sent only when given, so the service's defaults (full size, PNG, 90) apply
+otherwise and a service from before frames at full size is still answered; its answers carry no
+`size` (None).
 """
 from __future__ import annotations
 
@@ -92,6 +101,12 @@ def image_bytes(image: str | Path | Image.Image | np.ndarray) -> bytes:
     if isinstance(image, np.ndarray):
         return _png_of_array(image)
     raise TypeError(f"image: {type(image).__name__} not allowed; expected a path, a PIL image or a numpy array")
+
+
+def output_fields(size: str | int | None, format: str | None, quality: int | None) -> dict:
+    """The picture fields of a between or fill request (`size`, `format`, `quality`), those given only."""
+    given = {"size": size, "format": format, "quality": quality}
+    return {k: v for k, v in given.items() if v is not None}
 
 
 def end_json(end: Any) -> dict:
@@ -186,17 +201,23 @@ class Client:
 
     # -- frames -------------------------------------------------------------------------------
     def between(self, name: str, start: Any, end: Any, frames: int = 8, route: str = "geodesic",
-                min_confidence: float = 0.5, version: int | None = None, refine: bool = True) -> BetweenOut:
+                min_confidence: float = 0.5, version: int | None = None, refine: bool = True, *,
+                size: str | int | None = None, format: str | None = None, quality: int | None = None
+                ) -> BetweenOut:
         """Frames between two ends; each end is an image path, PIL image, array, or a settings dict.
-        refine=False skips detail transfer on a model that refines (faster, softer frames)."""
+        refine=False skips detail transfer on a model that refines (faster, softer frames). `size`:
+        "working", "full" or a long side in pixels (None: the service's default, full); `format`:
+        "png" or "jpeg"; `quality`: JPEG quality 1-100."""
         body = {"start": end_json(start), "end": end_json(end), "frames": frames, "route": route,
-                "min_confidence": min_confidence, "refine": bool(refine)}
+                "min_confidence": min_confidence, "refine": bool(refine), **output_fields(size, format, quality)}
         if version is not None:
             body["version"] = version
         return self._get(BetweenOut, "POST", f"/v1/models/{_seg(name)}/between", json=body)
 
     def between_upload(self, name: str, start: Any, end: Any, frames: int = 8, route: str = "geodesic",
-                       min_confidence: float = 0.5, version: int | None = None, refine: bool = True) -> BetweenOut:
+                       min_confidence: float = 0.5, version: int | None = None, refine: bool = True, *,
+                       size: str | int | None = None, format: str | None = None, quality: int | None = None
+                       ) -> BetweenOut:
         """As between, with both ends sent as image files in a multipart form (no base64); each end
         is an image path, PIL image or array."""
         files = {}
@@ -209,13 +230,14 @@ class Client:
                 "refine": "true" if refine else "false"}
         if version is not None:
             form["version"] = str(version)
+        form.update({k: str(v) for k, v in output_fields(size, format, quality).items()})
         return self._get(BetweenOut, "POST", f"/v1/models/{_seg(name)}/between/upload", files=files, data=form)
 
     @staticmethod
     def _fill_body(targets: Sequence[Mapping[str, float]], min_confidence: float, version: int | None,
-                   as_job: bool, refine: bool) -> dict:
+                   as_job: bool, refine: bool, output: dict) -> dict:
         body = {"targets": [{str(k): float(v) for k, v in t.items()} for t in targets],
-                "min_confidence": min_confidence, "as_job": as_job, "refine": bool(refine)}
+                "min_confidence": min_confidence, "as_job": as_job, "refine": bool(refine), **output}
         if version is not None:
             body["version"] = version
         return body
@@ -223,11 +245,13 @@ class Client:
     def fill(self, name: str, targets: Sequence[Mapping[str, float]], *, min_confidence: float = 0.5,
              version: int | None = None, as_job: bool = False,
              progress: Callable[[int, int], None] | None = None, wait_timeout: float = 600.0,
-             refine: bool = True) -> FillOut:
-        """One frame per target; when the server runs the fill as a job (202), the job is polled
-        until it is done and its result returned (start_fill gives the job itself)."""
-        response = self._request("POST", f"/v1/models/{_seg(name)}/fill",
-                                 json=self._fill_body(targets, min_confidence, version, as_job, refine))
+             refine: bool = True, size: str | int | None = None, format: str | None = None,
+             quality: int | None = None) -> FillOut:
+        """One frame per target; when the server runs the fill as a job (202: too many targets, or
+        more frame pixels than one answer may hold), the job is polled until it is done and its
+        result returned (start_fill gives the job itself). `size`, `format`, `quality` as in between."""
+        body = self._fill_body(targets, min_confidence, version, as_job, refine, output_fields(size, format, quality))
+        response = self._request("POST", f"/v1/models/{_seg(name)}/fill", json=body)
         if response.status_code == 202:
             job = self.wait(self._parse(JobOut, response).id, progress=progress, timeout=wait_timeout)
             return self._job_answer(job, FillOut)
@@ -237,10 +261,11 @@ class Client:
         return answer
 
     def start_fill(self, name: str, targets: Sequence[Mapping[str, float]], *, min_confidence: float = 0.5,
-                   version: int | None = None, refine: bool = True) -> JobOut:
+                   version: int | None = None, refine: bool = True, size: str | int | None = None,
+                   format: str | None = None, quality: int | None = None) -> JobOut:
         """Queue a fill as a job whatever its size; follow it with job / wait, collect it with result."""
-        response = self._request("POST", f"/v1/models/{_seg(name)}/fill",
-                                 json=self._fill_body(targets, min_confidence, version, True, refine))
+        body = self._fill_body(targets, min_confidence, version, True, refine, output_fields(size, format, quality))
+        response = self._request("POST", f"/v1/models/{_seg(name)}/fill", json=body)
         if response.status_code != 202:
             raise ClientError(response.status_code, "invalid_answer",
                               f"POST /v1/models/{name}/fill with as_job: expected 202 and a job, got "

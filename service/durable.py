@@ -156,10 +156,11 @@ def _fill_part(spec: dict, lo: int) -> list[dict]:
     rt = _rt()
     entry = rt.cache.lookup(spec["model"], spec["version"])
     targets = spec["targets"][lo:lo + spec["chunk"]]
-    frames = rt.pool.call(fill_chunk, rt.cache, entry, targets, spec["min_confidence"], lo, spec["refine"])
+    frames = rt.pool.call(fill_chunk, rt.cache, entry, targets, spec["min_confidence"], lo, spec["refine"],
+                          spec.get("size", "working"), spec.get("format", "png"), spec.get("quality", 90))
     if rt.metrics is not None:
         rt.metrics.frames(entry.name, len(frames), sum(not f.accepted for f in frames))
-    return [{"fields": f.fields, "png": f.png} for f in frames]
+    return [{"fields": f.fields, "png": f.png, "size": f.size} for f in frames]
 
 
 @DBOS.workflow(name=WORKFLOWS["fill"], max_recovery_attempts=MAX_ATTEMPTS)
@@ -320,10 +321,10 @@ class JobStore:
                            field="id", code="job_not_finished")
         if attrs.get("kind") == "training":
             return st.output
-        frames = [EncodedFrame(f["fields"], f["png"])
+        frames = [EncodedFrame(f["fields"], f["png"], tuple(f.get("size", (0, 0))))
                   for step in self._client.list_workflow_steps(job_id) if step["function_name"] == "geotween.fill_part"
                   for f in step["output"]]
-        return fill_answer(frames, attrs["model"], attrs["version"], attrs.get("tau"))
+        return fill_answer(frames, attrs["model"], attrs["version"], attrs.get("tau"), attrs.get("format", "png"))
 
     # -- changes ------------------------------------------------------------------------------
     def submit(self, kind: str, spec: dict, *, total: int, model: str | None = None,
@@ -336,7 +337,8 @@ class JobStore:
                 raise Unavailable(f"the job queue is full ({active} jobs queued or running, job_queue="
                                   f"{self.queue_limit}); retry later", code="job_queue_full")
             job_id = secrets.token_hex(16)
-            attrs = {"kind": kind, "model": model, "version": version, "tau": tau, "done": 0, "total": int(total)}
+            attrs = {"kind": kind, "model": model, "version": version, "tau": tau, "done": 0, "total": int(total),
+                     "format": spec.get("format", "png")}
             self._client.enqueue({"queue_name": QUEUE, "workflow_name": WORKFLOWS[kind], "workflow_id": job_id,
                                   "app_version": VERSION, "attributes": attrs}, spec)
         return self.get(job_id)

@@ -96,5 +96,21 @@ def encode_png(image: np.ndarray) -> bytes:
     return buf.tobytes()
 
 
+def encode_frame(image: np.ndarray, fmt: str = "png", quality: int = 90) -> bytes:
+    """A frame's file: lossless PNG (`encode_png`), or baseline JPEG at `quality` (1-100; colour
+    subsampled 4:2:0 by libjpeg's default) for full-size frames, whose PNGs are large."""
+    if fmt == "png":
+        return encode_png(image)
+    if fmt != "jpeg":
+        raise ValueError(f"format: {fmt!r} is not allowed; expected 'png' or 'jpeg'")
+    pixels = to_uint8(image)
+    if pixels.ndim == 3:
+        pixels = np.ascontiguousarray(pixels[..., ::-1]) if pixels.shape[2] == 3 else pixels[..., 0]
+    ok, buf = cv2.imencode(".jpg", pixels, [cv2.IMWRITE_JPEG_QUALITY, int(quality)])
+    if not ok:
+        raise ValueError(f"could not encode a {pixels.shape} frame as JPEG")
+    return buf.tobytes()
+
+
 def png_base64(png: bytes) -> str:
     return base64.b64encode(png).decode("ascii")

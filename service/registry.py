@@ -37,6 +37,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Callable, Iterator
 
+from .pg_index import PgIndex
 from .store import S3_PREFIX, ObjectStore
 
 ENV_VAR = "GEOTWEEN_REGISTRY"
@@ -52,7 +53,6 @@ _SCHEMA = [  # the same SQL for SQLite and PostgreSQL
     "CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value INTEGER NOT NULL)",
     "INSERT INTO meta (key, value) VALUES ('generation', 0) ON CONFLICT (key) DO NOTHING",
 ]
-PG_SCHEMA = "geotween"
 _COLUMNS = "name, version, created, hash, metrics, path"
 
 
@@ -144,12 +144,7 @@ class Registry:
         self.store = store  # None: bundles in ROOT/models
         self._pg = None
         if index_url is not None:  # the index in PostgreSQL, shared by every replica
-            import sqlalchemy
-
-            url = sqlalchemy.make_url(index_url).set(drivername="postgresql+psycopg")
-            self._pg = sqlalchemy.create_engine(url, pool_size=4, max_overflow=4, pool_pre_ping=True,
-                                                connect_args={"options": f"-c search_path={PG_SCHEMA}",
-                                                              "connect_timeout": int(busy_timeout_s)})
+            self._pg = PgIndex(index_url, timeout_s=busy_timeout_s)
 
     @classmethod
     def open(cls, root: str | Path | None = None, *, create: bool = True, **settings) -> "Registry":
@@ -317,7 +312,8 @@ class Registry:
     @contextlib.contextmanager
     def _connect(self, *, write: bool = False, schema: bool = False) -> Iterator:
         if self._pg is not None:
-            with self._pg_connect(write=write, schema=schema) as con:
+            with self._pg.connect(write=write, schema=schema, error=RegistryError,
+                                  passing=(RegistryError, InvalidName, ModelNotFound)) as con:
                 yield con
             return
         try:
@@ -339,33 +335,6 @@ class Registry:
             raise
         finally:
             con.close()
-
-    @contextlib.contextmanager
-    def _pg_connect(self, *, write: bool, schema: bool) -> Iterator["_PgConnection"]:
-        try:
-            raw = self._pg.raw_connection()
-        except Exception as exc:  # the driver's own errors (psycopg), or the pool's
-            raise RegistryError(f"cannot open the registry index in PostgreSQL: {type(exc).__name__}: "
-                                f"{str(exc).splitlines()[0] if str(exc) else ''}") from None
-        con = _PgConnection(raw)
-        try:
-            if schema:  # one replica creates the tables; the others wait for it
-                con.execute("SELECT pg_advisory_xact_lock(7262331)")
-                con.execute(f"CREATE SCHEMA IF NOT EXISTS {PG_SCHEMA}")
-            if write:  # writers queue on the generation row, as SQLite's writers do on its lock
-                con.execute("SELECT value FROM meta WHERE key = 'generation' FOR UPDATE")
-            yield con
-            raw.commit()
-        except BaseException as exc:
-            with contextlib.suppress(Exception):
-                raw.rollback()
-            if isinstance(exc, (RegistryError, InvalidName, ModelNotFound)) or not isinstance(exc, Exception):
-                raise
-            if type(exc).__module__.startswith("psycopg"):
-                raise RegistryError(f"registry index (PostgreSQL): {exc}") from exc
-            raise
-        finally:
-            raw.close()  # back to the pool
 
     def _local(self, path: str) -> Path:
         return self.store.cache / path.removeprefix(S3_PREFIX) if path.startswith(S3_PREFIX) else self.root / path
@@ -404,21 +373,6 @@ def _read_manifest(folder: Path) -> dict:
             raise RegistryError(f"manifest.json key {key!r} must be a non-empty {label}; "
                                 f"got {manifest[key]!r}")
     return manifest
-
-
-class _PgConnection:
-    """A pooled psycopg connection that takes the registry's SQLite-style '?' placeholders."""
-
-    def __init__(self, raw):
-        self.raw = raw
-
-    def execute(self, sql: str, params: tuple = ()):
-        cur = self.raw.cursor()
-        cur.execute(sql.replace("?", "%s"), tuple(params))
-        return cur
-
-    def commit(self) -> None:
-        self.raw.commit()
 
 
 def _ready(con, where: str, *args: object):

@@ -8,9 +8,9 @@ from __future__ import annotations
 
 import base64
 import io
-from typing import Literal
+from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field, GetPydanticSchema, model_validator
 
 NOTICE = "frames are synthesized by a learned model, not captured"
 DETAIL = ("share of the frame's pixels, 0 to 1, carried over from real training images: by detail transfer (the "
@@ -23,9 +23,9 @@ CONFIDENCE = ("calibrated probability that SSIM vs the true view >= tau; null wh
               "is never accepted")
 TAU = ("the SSIM against the true view that the frames' confidence speaks about (chosen per model at training, "
        "train --tau); null: the model has no confidence and rejects every frame")
-FILE_PATTERN = r"^(frame|target)_[0-9]{4,}\.png$"  # between frames, fill frames; 1-based index, 4 digits at least
-FILE = ("name of the frame's PNG beside the manifest: frame_0001.png for between frames, target_0001.png for "
-        "fill frames (the 1-based index, four digits at least); null when the frame was not written (the "
+FILE_PATTERN = r"^(frame|target)_[0-9]{4,}\.(png|jpg)$"  # between frames, fill frames; 1-based index, 4 digits at least
+FILE = ("name of the frame's file beside the manifest: frame_0001.png for between frames, target_0001.png for "
+        "fill frames (the 1-based index, four digits at least; .jpg for JPEG); null when it was not written (the "
         "command line writes rejected frames only with --keep-rejected, fill never)")
 REFINE_REQUEST = ("detail transfer on a model that refines (see GET /v1/models/{name}, refine.on). false: the "
                   "decoded frames only, faster and softer, each scored by the model's confidence fitted on "
@@ -42,6 +42,27 @@ _EXAMPLE_PARAMS_B = {"lamp_azimuth": 120.0, "lamp_elevation": 60.0}
 
 class _Request(BaseModel):
     model_config = ConfigDict(strict=True, extra="forbid", allow_inf_nan=False)
+
+
+SIZE = ("the frames' size: 'full' (the default: the captures' own size, kept up to the cap set at training; "
+        "the model's own when it kept none), 'working' (the model's resolution), or a long side in pixels "
+        "from 8 up to the captures'. Each frame is judged at the working size; a larger one takes its detail "
+        "from the two captures around it, only where they agree with it")
+
+
+MIN_SIDE, MAX_SIDE = 8, 16384  # a frame's long side in pixels, whatever the model (each model caps it lower)
+_SIZE_ERROR = f"Input should be 'working', 'full' or a long side in pixels, {MIN_SIDE} to {MAX_SIDE}"
+# one error at `size` itself when no member of the union fits, not one per member
+Size = Annotated[Literal["working", "full"] | Annotated[int, Field(ge=MIN_SIDE, le=MAX_SIDE)], GetPydanticSchema(
+    lambda source, handler: {**handler(source), "custom_error_type": "invalid", "custom_error_message": _SIZE_ERROR})]
+
+
+class _Output(_Request):
+    """What every frame request says about the pictures it wants back."""
+    size: Size = Field("full", description=SIZE)
+    format: Literal["png", "jpeg"] = Field("png", description="picture format: lossless PNG, or JPEG (smaller "
+                                                              "at full size; lossy)")
+    quality: int = Field(90, ge=1, le=100, description="JPEG quality, 1 to 100 (format jpeg only)")
 
 
 class _Out(BaseModel):
@@ -75,7 +96,7 @@ class EndRequest(_Request):
         return self
 
 
-class BetweenRequest(_Request):
+class BetweenRequest(_Output):
     start: EndRequest
     end: EndRequest
     frames: int = Field(8, ge=1, description="in-between frames, ends excluded (at most max_frames)")
@@ -95,7 +116,7 @@ class _Picture:
     image: str
 
     def png(self) -> bytes:
-        """The frame's PNG file, bytes as the service encoded them."""
+        """The frame's file (PNG, or JPEG when the answer's format is jpeg), bytes as the service encoded them."""
         return base64.b64decode(self.image)
 
     def pil(self):
@@ -129,7 +150,7 @@ class _BetweenFrame(_Out):
 
 class FrameOut(_Picture, _BetweenFrame):
     """One synthesized frame: decoded from a latent code, refined by detail transfer when the model refines."""
-    image: str = Field(description="base64 PNG at the model's resolution")
+    image: str = Field(description="base64 PNG or JPEG (the answer's format) at the answer's size")
 
 
 class FrameFileOut(_BetweenFrame):
@@ -154,6 +175,9 @@ class _BetweenHead(_Out):
                                                 "(the frame the model makes at the settings it read for it does not "
                                                 "match it to SSIM tau), so the route rests on settings nobody can "
                                                 "vouch for: every frame's confidence is null and none is accepted")
+    size: tuple[int, int] | None = Field(None, description="width and height of every frame, pixels (absent "
+                                                           "from the answers of services without full-size frames)")
+    format: Literal["png", "jpeg"] = "png"
     synthesized: Literal[True] = True
     notice: str = NOTICE
 
@@ -172,7 +196,7 @@ class BetweenManifestOut(_BetweenHead):
 
 
 # -- fill ---------------------------------------------------------------------------------------
-class FillRequest(_Request):
+class FillRequest(_Output):
     targets: list[dict[str, float]] = Field(min_length=1, description="settings of each missing view "
                                                                       "(at most max_fill_targets)")
     min_confidence: float = Field(0.5, ge=0.0, le=1.0)
@@ -195,7 +219,7 @@ class _FillFrame(_Out):
 
 
 class FillFrameOut(_Picture, _FillFrame):
-    image: str = Field(description="base64 PNG at the model's resolution")
+    image: str = Field(description="base64 PNG or JPEG (the answer's format) at the answer's size")
 
 
 class FillFrameFileOut(_FillFrame):
@@ -210,6 +234,9 @@ class _FillHead(_Out):
     frames: list  # each answer names its frame model
     accepted: int = Field(ge=0)
     rejected: int = Field(ge=0)
+    size: tuple[int, int] | None = Field(None, description="width and height of every frame, pixels (absent "
+                                                           "from the answers of services without full-size frames)")
+    format: Literal["png", "jpeg"] = "png"
     synthesized: Literal[True] = True
     notice: str = NOTICE
 

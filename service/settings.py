@@ -33,6 +33,9 @@ class Settings(BaseSettings):
     max_frames: int = Field(64, description="most in-between frames per request")
     max_fill_sync: int = Field(32, description="most fill targets answered at once; more run as a job")
     max_fill_targets: int = Field(4096, description="most fill targets per request")
+    max_output_pixels: int = Field(64 * 1024 * 1024, description="most frame pixels (frames x width x height) one "
+                                                                 "answer may hold; a fill over it runs as a job")
+    max_job_pixels: int = Field(4096 * 1024 * 1024, description="most frame pixels one fill job may hold")
     max_map_codes: int = Field(1026, description="most latent codes placed on the map per request")
     inference_workers: int = Field(2, description="threads of the one executor that runs torch work")
     job_queue: int = Field(16, description="most jobs queued or running at once")
@@ -89,6 +92,8 @@ class Settings(BaseSettings):
             "max_frames": (1, 1024),
             "max_fill_sync": (1, 4096),
             "max_fill_targets": (1, 1_000_000),
+            "max_output_pixels": (64, 2 ** 34),
+            "max_job_pixels": (64, 2 ** 40),
             "max_map_codes": (1, 1_000_000),
             "inference_workers": (1, 64),
             "job_queue": (1, 10_000),

@@ -82,9 +82,9 @@ def add_file_schemas(app: FastAPI) -> None:
 def to_zip(answer: Answer) -> bytes:
     """A ZIP of PNG frames (every frame; manifest.json, a BetweenManifestOut or FillManifestOut,
     says which are accepted)."""
-    files = [frame_file(answer.kind, f.fields["index"]) for f in answer.frames]
+    files = [frame_file(answer.kind, f.fields["index"], answer.format) for f in answer.frames]
     buf = io.BytesIO()
-    with zipfile.ZipFile(buf, "w", compression=zipfile.ZIP_STORED) as zf:  # PNGs are compressed already
+    with zipfile.ZipFile(buf, "w", compression=zipfile.ZIP_STORED) as zf:  # PNGs and JPEGs are compressed already
         for name, f in zip(files, answer.frames):
             zf.writestr(name, f.png)
         zf.writestr("manifest.json", manifest_json(to_wire(answer, files)))

@@ -9,15 +9,17 @@ from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
 from ...models.engine import Endpoint
+from ...models.fullsize import sized
 from ...models.params import ParamSpace
 from ..answers import Answer, between_answer, fill_answer, fill_chunk
 from ..deps import ApiKeyDep, ModelName, Services, ServicesDep, note
-from ..errors import BadInput
+from ..errors import BadInput, TooLarge
 from ..imaging import decode_base64, open_image, to_model_array
 from ..registry import ModelVersion
 from ..schemas import (
     MAX_VERSION,
     REFINE_REQUEST,
+    SIZE,
     BetweenManifestOut,
     BetweenOut,
     BetweenRequest,
@@ -63,20 +65,37 @@ def _endpoint(end, engine) -> Endpoint:
     return Endpoint(image=to_model_array(end, engine.resolution, engine.channels))
 
 
+def _output_pixels(services: Services, entry: ModelVersion, size, frames: int, limit: str) -> int:
+    """Pixels of `frames` frames at `size`; 422 for a size the model cannot make, 413 over `limit`."""
+    try:
+        width, height = services.cache.frame_size(entry, size)
+    except ValueError as exc:
+        raise BadInput(str(exc), field="size", code="invalid_size") from None
+    pixels = frames * width * height
+    top = getattr(services.settings, limit)
+    if pixels > top:
+        raise TooLarge(f"{frames} frames of {width} x {height} px are {pixels} pixels, over the limit {limit}={top}; "
+                       f"ask for a smaller size or fewer frames", field="size",
+                       code="output_too_large")
+    return pixels
+
+
 def _between(services: Services, name: str, version: int | None, start, end, frames: int, route: str,
-             min_confidence: float, refine: bool = True) -> Answer:
+             min_confidence: float, refine: bool = True, size="full", fmt: str = "png", quality: int = 90) -> Answer:
     """The whole answer on the inference pool, in one hop from the event loop (measured: each
     extra hop through a worker thread added about a millisecond under load on 2 cores): the model
-    version, both ends, the frames and their PNGs."""
+    version, both ends, the frames at their size and their files."""
     cache = services.cache
     entry = cache.lookup(name, version)
+    _output_pixels(services, entry, size, frames, "max_output_pixels")
     space = cache.space(entry)
     limit = services.settings.max_image_pixels
     start, end = _resolve_end(start, "start", space, limit), _resolve_end(end, "end", space, limit)
     engine = cache.engine(entry)
     ans = engine.between(_endpoint(start, engine), _endpoint(end, engine), frames=frames, route=route,
                          min_confidence=min_confidence, refine=refine)
-    return between_answer(ans, entry.name, entry.version)
+    sized(engine, ans.frames, size)
+    return between_answer(ans, entry.name, entry.version, fmt, quality)
 
 
 def _frame_limit(services: Services, frames: int) -> None:
@@ -87,9 +106,10 @@ def _frame_limit(services: Services, frames: int) -> None:
 
 
 async def _answer_between(request: Request, services: Services, name: str, start, end, *, frames: int,
-                          route: str, min_confidence: float, version: int | None, refine: bool = True):
+                          route: str, min_confidence: float, version: int | None, refine: bool = True,
+                          size="full", fmt: str = "png", quality: int = 90):
     answer = await services.admission.run(_between, services, name, version, start, end, frames, route,
-                                          min_confidence, refine)
+                                          min_confidence, refine, size, fmt, quality)
     services.metrics.frames(answer.model, len(answer.frames), answer.rejected)
     note(request, model=answer.model, version=answer.version, frames=len(answer.frames), rejected=answer.rejected)
     return respond(request, answer)
@@ -140,7 +160,8 @@ def delete_model_version(key: ApiKeyDep, name: ModelName, version: Annotated[int
 async def between(name: ModelName, body: BetweenRequest, request: Request, services: ServicesDep):
     _frame_limit(services, body.frames)
     return await _answer_between(request, services, name, body.start, body.end, frames=body.frames, route=body.route,
-                                 min_confidence=body.min_confidence, version=body.version, refine=body.refine)
+                                 min_confidence=body.min_confidence, version=body.version, refine=body.refine,
+                                 size=body.size, fmt=body.format, quality=body.quality)
 
 
 _UPLOAD_EXAMPLE = {"start": "(PNG or JPEG file)", "end": "(PNG or JPEG file)", "frames": 8, "route": "geodesic",
@@ -160,7 +181,10 @@ async def between_upload(
         route: Annotated[Literal["geodesic", "straight"], Form()] = "geodesic",
         min_confidence: Annotated[float, Form(ge=0.0, le=1.0, allow_inf_nan=False)] = 0.5,
         version: Annotated[int | None, Form(ge=1, le=MAX_VERSION)] = None,
-        refine: Annotated[bool, Form(description=REFINE_REQUEST)] = True):
+        refine: Annotated[bool, Form(description=REFINE_REQUEST)] = True,
+        size: Annotated[str, Form(pattern=r"^(working|full|[0-9]{1,5})$", description=SIZE)] = "full",
+        format: Annotated[Literal["png", "jpeg"], Form(description="picture format")] = "png",
+        quality: Annotated[int, Form(ge=1, le=100, description="JPEG quality")] = 90):
     _frame_limit(services, frames)
     files = []
     for field, upload in (("start", start), ("end", end)):
@@ -169,7 +193,8 @@ async def between_upload(
             raise BadInput(f"{field}: the uploaded file is empty", field=field, code="invalid_image")
         files.append(data)
     return await _answer_between(request, services, name, files[0], files[1], frames=frames, route=route,
-                                 min_confidence=min_confidence, version=version, refine=refine)
+                                 min_confidence=min_confidence, version=version, refine=refine,
+                                 size=int(size) if size.isdigit() else size, fmt=format, quality=quality)
 
 
 @router.post("/models/{name}/fill", operation_id="fill", response_model=FillOut,
@@ -186,24 +211,32 @@ async def fill(name: ModelName, body: FillRequest, request: Request, services: S
         raise BadInput(f"targets: {n} targets is over the limit; allowed 1 to max_fill_targets="
                        f"{s.max_fill_targets}", field="targets", code="too_many_targets")
 
-    def checked() -> tuple[ModelVersion, float | None]:  # one hop: the version, then every target against its space
+    def checked() -> tuple[ModelVersion, float | None, bool]:  # one hop: the version, the size, every target
         entry = services.cache.lookup(name, body.version)
         space = services.cache.space(entry)
         for i, target in enumerate(body.targets):
             _check_params(space, target, f"targets[{i}]")
-        return entry, services.cache.manifest(entry).tau
+        try:  # answered at once only within max_output_pixels; a job within max_job_pixels
+            _output_pixels(services, entry, body.size, n, "max_output_pixels")
+            fits = True
+        except TooLarge:
+            _output_pixels(services, entry, body.size, n, "max_job_pixels")
+            fits = False
+        return entry, services.cache.manifest(entry).tau, fits
 
-    entry, tau = await run_in_threadpool(checked)
+    entry, tau, fits = await run_in_threadpool(checked)
     targets, min_conf, refine = body.targets, body.min_confidence, body.refine
-    if n <= s.max_fill_sync and not body.as_job:
-        frames = await services.admission.run(fill_chunk, services.cache, entry, targets, min_conf, 0, refine)
-        answer = fill_answer(frames, entry.name, entry.version, tau)
+    out = (body.size, body.format, body.quality)
+    if n <= s.max_fill_sync and fits and not body.as_job:
+        frames = await services.admission.run(fill_chunk, services.cache, entry, targets, min_conf, 0, refine, *out)
+        answer = fill_answer(frames, entry.name, entry.version, tau, body.format)
         services.metrics.frames(entry.name, len(frames), answer.rejected)
         note(request, model=entry.name, version=entry.version, frames=len(frames), rejected=answer.rejected)
         return respond(request, answer)
 
     spec = {"model": entry.name, "version": entry.version, "targets": [dict(t) for t in targets],
-            "min_confidence": min_conf, "refine": refine, "chunk": s.max_fill_sync}
+            "min_confidence": min_conf, "refine": refine, "chunk": s.max_fill_sync, "size": body.size,
+            "format": body.format, "quality": body.quality}
     job = await run_in_threadpool(services.jobs.submit, "fill", spec, total=n, model=entry.name,
                                   version=entry.version, tau=tau)
     note(request, model=entry.name, version=entry.version, job=job["id"])

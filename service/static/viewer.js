@@ -220,6 +220,8 @@ async function makeFrames(event) {
   if (!body) return;
   $("go").disabled = true;
   say("Making " + body.frames + " frame" + (body.frames === 1 ? "" : "s") + "...");
+  // the filmstrip and playback at the model's working size keep the page light; the ZIP is at full size
+  body.size = "working";
   try {
     const answer = await (await postJSON(modelPath("/between"), body)).json();
     state.answer = answer;
@@ -242,6 +244,11 @@ async function makeFrames(event) {
   }
 }
 
+// A frame's picture as a data URL, in the answer's format (servers before formats existed send PNG).
+function pictureURL(answer, f) {
+  return "data:image/" + (answer.format === "jpeg" ? "jpeg" : "png") + ";base64," + f.image;
+}
+
 // What the confidences are about, from the answer's tau (servers before it existed send none).
 function tauText(tau) {
   return typeof tau === "number" ? " that SSIM is at least " + fmt(tau, 2) : "";
@@ -257,7 +264,7 @@ function showStrip(answer) {
       "aria-label": "frame " + f.index + ", t " + fmt(f.t, 2) + ", " + confidenceText(f) + ", " +
         (detailText(f) ? detailText(f) + " from real images, " : "") +
         (f.accepted ? "accepted" : "rejected") + "; show in playback" });
-    const img = el("img", { src: "data:image/png;base64," + f.image, alt: "" });
+    const img = el("img", { src: pictureURL(answer, f), alt: "" });
     button.append(img);
     if (!f.accepted) button.append(el("span", { class: "hatch", "aria-hidden": "true" }));
     button.addEventListener("click", () => { stopPlayback(); show(i); });
@@ -301,7 +308,7 @@ function show(i) {
   state.current = ((i % frames.length) + frames.length) % frames.length;
   const f = frames[state.current];
   const img = $("screen-img");
-  img.src = "data:image/png;base64," + f.image;
+  img.src = pictureURL(state.answer, f);
   img.alt = "synthesized frame " + f.index + " of " + frames.length;
   $("screen").classList.toggle("rejected", !f.accepted);
   $("screen").classList.remove("empty");
@@ -367,7 +374,8 @@ async function downloadZip() {
     link.click();
     link.remove();
     setTimeout(() => URL.revokeObjectURL(link.href), 10000);
-    say("ZIP downloaded: every frame as PNG plus manifest.json (which says which frames were rejected).");
+    say("ZIP downloaded: every frame as PNG at full size (the captures' own, where the model kept them) plus " +
+      "manifest.json (which says which frames were rejected).");
   } catch (err) {
     problem(err.message);
   }

@@ -94,7 +94,9 @@ def test_ci_installs_chromium_before_the_readme_test_command():
     script = (ROOT / ".ci" / "run").read_text()
     lines = script.splitlines()
     assert command in lines, "the README's test command, verbatim"
-    install = next(i for i, line in enumerate(lines) if "apt-get install" in line and "chromium" in line)
+    install = next(i for i, line in enumerate(lines) if "apt-get install" in line)
+    asked = "\n".join(lines[:install])
+    assert "need+=(chromium)" in asked and "need+=(postgresql-15)" in asked  # what the install line installs
     assert install < lines.index(command)
     assert "/usr/bin/chromium" in script and "DEBIAN_FRONTEND=noninteractive" in script
     assert "playwright install" not in script
@@ -266,6 +268,7 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
         assert sent["start"] == {"params": {"lamp_azimuth": 300, "lamp_elevation": 30}}
         assert sent["end"] == {"params": {"lamp_azimuth": 60, "lamp_elevation": 60}}
         assert (sent["frames"], sent["route"], sent["min_confidence"]) == (6, "geodesic", 0)
+        assert sent["size"] == "working"  # the filmstrip at the model's size keeps the page light
         answer = first.value.json()
         strip = page.locator("#strip li")
         expect(strip).to_have_count(6)
@@ -318,9 +321,12 @@ def test_the_viewer_in_a_browser(live, browser, tmp_path):
                                                                         if not f["accepted"]))).click()
         expect(page.locator("#screen-mark")).to_be_visible()
 
-        # the ZIP download is the between answer as PNGs and a manifest
-        with page.expect_download() as download:
+        # the ZIP download is the between answer as PNGs and a manifest, at the default size (full)
+        with page.expect_download() as download, page.expect_request(
+                lambda r: r.method == "POST" and r.url.endswith("/v1/models/relief-tile/between")
+                and r.headers.get("accept") == "application/zip") as zipped:
             page.click("#zip")
+        assert "size" not in zipped.value.post_data_json
         archive = zipfile.ZipFile(io.BytesIO(Path(download.value.path()).read_bytes()))
         assert sorted(archive.namelist()) == [f"frame_{i:04d}.png" for i in range(1, 7)] + ["manifest.json"]
 
