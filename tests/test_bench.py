@@ -59,3 +59,5 @@ def test_quick_run_measures_every_stage(tmp_path):
     diffs = [float(x) for x in re.findall(r"\| ([0-9.]+e[+-][0-9]+) \(\d+ pairs\) \|", text)]
     assert len(diffs) == 3 and max(diffs) < 1e-9
     assert re.search(r"\| 16 \| [0-9.]+ \| [0-9.]+ \|", text)  # 16-frame latency row
+    assert re.search(r"HTTP overhead, 16-frame answer: [0-9.]+ ms through HTTP .* [0-9.]+ ms for the same answer "
+                     r"bytes in process, ratio [0-9.]+ \(median of [0-9]+ pairs", text)

@@ -63,6 +63,47 @@ def test_pool_bounds_concurrency_and_uses_inference_mode(pool):
         InferencePool(0)
 
 
+def test_work_one_piece_after_another_stays_on_the_worker_that_went_idle_last(pool):
+    # torch keeps a team of intra-op threads per calling thread: a lone stream of requests that took
+    # turns between workers (as ThreadPoolExecutor's idle threads do) woke a sleeping team each time
+    meet = threading.Barrier(2, timeout=5)
+    first = [pool.submit(lambda: (meet.wait(), threading.current_thread().name)[1]) for _ in range(2)]
+    assert len({f.result(5) for f in first}) == 2  # both workers are running now
+    names = [pool.call(lambda: threading.current_thread().name) for _ in range(12)]
+    assert len(set(names)) == 1, names
+
+
+def test_an_idle_worker_ends_while_another_is_idle_and_the_pool_grows_again():
+    p = InferencePool(2, idle_s=0.2)
+    try:
+        for _ in range(2):  # two workers (a barrier of two passes only when both run at once), then one
+            meet = threading.Barrier(2, timeout=5)
+            for f in [p.submit(meet.wait) for _ in range(2)]:
+                f.result(5)
+            wait_for(lambda: p.threads == 1, timeout=5)
+            time.sleep(0.5)  # the last idle worker stays
+            assert p.threads == 1 and p.call(lambda: 7) == 7
+        with pytest.raises(ValueError, match="idle_s"):
+            InferencePool(2, idle_s=0.0)
+    finally:
+        p.shutdown()
+
+
+def test_shutdown_cancels_waiting_work_lets_running_work_end_and_refuses_more():
+    p = InferencePool(1)
+    gate, ran = threading.Event(), []
+    running = p.submit(gate.wait, 5.0)
+    waiting = p.submit(ran.append, "waiting")
+    stopper = threading.Thread(target=p.shutdown)
+    stopper.start()
+    wait_for(waiting.cancelled, timeout=5)
+    gate.set()
+    stopper.join(5)
+    assert not stopper.is_alive() and running.result(1) is True and ran == [] and p.threads == 0
+    with pytest.raises(RuntimeError, match="shut down"):
+        p.submit(ran.append, "late")
+
+
 @pytest.fixture
 def store(tmp_path):
     now = [time.time()]  # the database stamps jobs with the wall clock; the test moves past it
