@@ -195,7 +195,7 @@ def memory(full_bundle: str | Path, small_bundle: str | Path, answers: int = 10)
     import subprocess
     import sys
 
-    script = ("import resource, sys, numpy as np\n"
+    script = ("import sys, numpy as np\n"
               "from geotween.models.engine import Endpoint, Engine\n"
               "from geotween.models import fullsize as lfull\n"
               "e = Engine.load(sys.argv[1]); r = np.random.default_rng(0)\n"
@@ -203,7 +203,8 @@ def memory(full_bundle: str | Path, small_bundle: str | Path, answers: int = 10)
               f"for _ in range({answers}):\n"
               "    a = e.between(Endpoint(params=one()), Endpoint(params=one()), frames=16)\n"
               "    lfull.sized(e, a.frames, 'full')\n"
-              "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)\n")
+              # VmHWM, not ru_maxrss: a child's ru_maxrss starts from its parent's at fork
+              "print([int(l.split()[1]) for l in open('/proc/self/status') if l.startswith('VmHWM')][0] / 1024)\n")
     peak = {}
     for key, path in (("full", full_bundle), ("working", small_bundle)):
         out = subprocess.run([sys.executable, "-c", script, str(path)], capture_output=True, text=True, check=True)
