@@ -4,6 +4,7 @@ import base64
 import io
 import json
 import shutil
+import time
 from dataclasses import replace
 from pathlib import Path
 
@@ -86,3 +87,14 @@ def with_refine(src: Path, folder: Path, *, on: bool) -> dict:
     manifest["refine"] = entry = chosen.to_dict()
     (folder / "manifest.json").write_text(json.dumps(manifest))
     return entry
+
+
+def wait_for(predicate, timeout: float = 20.0, step: float = 0.02):
+    """predicate()'s first truthy value, polled every `step` seconds; AssertionError after `timeout`."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        value = predicate()
+        if value:
+            return value
+        time.sleep(step)
+    raise AssertionError(f"condition not met within {timeout} s")

@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
+from api_helpers import wait_for
 from fastapi.testclient import TestClient
 from tiny_scenes import tiny_demo_scene
 
@@ -30,16 +31,6 @@ KILLS = 20
 
 def P(az, el):
     return {"lamp_azimuth": float(az), "lamp_elevation": float(el)}
-
-
-def wait_for(predicate, timeout: float, step: float = 0.05):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        value = predicate()
-        if value:
-            return value
-        time.sleep(step)
-    raise AssertionError(f"condition not met within {timeout} s")
 
 
 @pytest.fixture

@@ -5,6 +5,7 @@ import time
 
 import pytest
 import torch
+from api_helpers import wait_for
 from fastapi.testclient import TestClient
 from tiny_scenes import tiny_demo_scene
 
@@ -19,20 +20,8 @@ from geotween.service.settings import Settings
 KEY = "jobs-key-0123456789abcdef"
 
 
-
-
 def P(az, el):
     return {"lamp_azimuth": float(az), "lamp_elevation": float(el)}
-
-
-def wait_for(predicate, timeout: float = 20.0, step: float = 0.02):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        value = predicate()
-        if value:
-            return value
-        time.sleep(step)
-    raise AssertionError(f"condition not met within {timeout} s")
 
 
 @pytest.fixture
