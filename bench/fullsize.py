@@ -91,7 +91,7 @@ def measure(bundle: str | Path, kind: str, *, size: int = 512, pairs: int = 20, 
         away += list(engine.space.distance(want, engine.capture_params[near], engine.scale) > 0.05)
         outs = {"geodesic_full": full, "geodesic_enlarged": lfull.resize(working, size, size),
                 "dissolve": (1 - t)[:, None, None, None] * a + t[:, None, None, None] * z,
-                "flow": lflow.tween(a, z, t), "nearest": lfull.full_captures(engine, near)}
+                "flow": lflow.tween(a, z, t), "nearest": engine.captures(near, full=True)}
         for k in range(len(t)):
             scores["geodesic_working"]["psnr"].append(_psnr(working[k], s_pair["truth"][k]))
             scores["geodesic_working"]["ssim"].append(_ssim(working[k], s_pair["truth"][k]))

@@ -227,17 +227,17 @@ class Engine:
         out, detail = lrefine.refine(images, refs, cfg, pool=self._refine_pool)
         return out, {"detail": detail}
 
-    def captures(self, idx: np.ndarray) -> np.ndarray:
+    def captures(self, idx: np.ndarray, full: bool = False) -> np.ndarray:
         """Float images in [0, 1] of capture indices (any shape; `capture_params` order: the bank,
-        then the held-out share), read from the bundle's pixels."""
+        then the held-out share), read from the bundle's pixels; `full`: at the captures' own size."""
         idx = np.asarray(idx, dtype=np.int64)
+        bank, held = self.full_pixels if full else (self.bank_pixels, self.holdout_pixels)
         n = len(self.bundle.codes)
         if not self.holdout_captures or idx.size == 0 or idx.max() < n:
-            return self.bank_pixels[idx].astype(np.float32) / 255.0
-        out = np.empty(idx.shape + self.bank_pixels.shape[1:], dtype=np.uint8)
-        bank = idx < n
-        out[bank] = self.bank_pixels[idx[bank]]
-        out[~bank] = self.holdout_pixels[idx[~bank] - n]
+            return bank[idx].astype(np.float32) / 255.0
+        out = np.empty(idx.shape + bank.shape[1:], dtype=np.uint8)
+        inside = idx < n
+        out[inside], out[~inside] = bank[idx[inside]], held[idx[~inside] - n]
         return out.astype(np.float32) / 255.0
 
     @cached_property
@@ -246,14 +246,18 @@ class Engine:
         return self.bundle.mapped_pixels("holdout_images")
 
     @cached_property
+    def full_pixels(self) -> tuple[np.ndarray, np.ndarray]:
+        """The bank's and the held-out share's captures at their own size (bundle.has_full), mapped."""
+        return self.bundle.mapped_pixels("full_images"), self.bundle.mapped_pixels("holdout_full_images")
+
+    @cached_property
     def flow_cache(self) -> lpairs.FlowCache:
         """Flows between capture pairs, kept across requests (models.pairs.FlowCache)."""
         return lpairs.FlowCache(self.config.flow_cache_mb << 20)
 
     def warm_flows(self, stop=None) -> int:
-        """Fill the flow cache with the flows of the capture pairs brackets are likely to take, so
-        that first answers cost what later ones do (a service runs it in the background after a
-        load); the number of pairs added. Nothing for a model that does not make frames from pairs."""
+        """Fill the flow cache with the flows of the capture pairs brackets are likely to take (a service
+        runs it after a load); the pairs added. Nothing for a model that does not make frames from pairs."""
         if self.refine is None or self.refine.mode != "pair" or self.config.flow_cache_mb == 0:
             return 0
         return lpairs.warm(self.flow_cache, self.captures, lpairs.likely_pairs(self.bracketer), self.refine.flow, stop)

@@ -65,22 +65,6 @@ def _scaled(flows: lpairs.PairFlows, width: int, height: int) -> lpairs.PairFlow
     return lpairs.PairFlows(up(flows.ab, gain), up(flows.ba, gain), up(flows.seen_a), up(flows.seen_b))
 
 
-def full_captures(engine, idx: np.ndarray) -> np.ndarray:
-    """Float images in [0, 1] of capture indices at the captures' own size (as engine.captures)."""
-    mapped = engine.__dict__.setdefault("_full_pixels", {})
-    for key in ("full_images", "holdout_full_images"):
-        if key not in mapped:
-            mapped[key] = engine.bundle.mapped_pixels(key)
-    idx = np.asarray(idx, dtype=np.int64)
-    n = len(engine.bundle.codes)
-    bank, held = mapped["full_images"], mapped["holdout_full_images"]
-    out = np.empty(idx.shape + bank.shape[1:], dtype=np.uint8)
-    inside = idx < n
-    out[inside] = bank[idx[inside]]
-    out[~inside] = held[idx[~inside] - n]
-    return out.astype(np.float32) / 255.0
-
-
 def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.ndarray:
     """The (N, h, w, C) working-size frames `frames`, made at settings `places` (N, P), at a long
     side of `long` pixels (the captures' aspect), as the module docstring says."""
@@ -88,7 +72,7 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
     n, h, w, c = frames.shape
     if not engine.bundle.has_full or len(frames) == 0:  # nothing larger was kept: the frames enlarged
         return resize(frames, long, long)
-    full_h, full_w = engine.bundle.mapped_pixels("full_images").shape[1:3]
+    full_h, full_w = engine.full_pixels[0].shape[1:3]
     width, height = frame_size(long, w, (full_w, full_h))
     u = (engine.space.wrap(np.asarray(places, dtype=np.float64)) - engine.space.lo) / engine.scale
     bracket = engine.bracketer(u)
@@ -96,7 +80,7 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
     # the pair flows of a model that makes frames from pairs (shared with its cache), else DIS
     method = engine.refine.flow if engine.refine is not None and engine.refine.mode == "pair" else "dis"
     used = sorted({int(k) for k in np.concatenate([bracket.first, bracket.second])})
-    big = dict(zip(used, resize(full_captures(engine, np.asarray(used)), width, height)))
+    big = dict(zip(used, resize(engine.captures(np.asarray(used), full=True), width, height)))
     small = dict(zip(used, engine.captures(np.asarray(used))))
     base = resize(frames, width, height)
     out = np.empty((n, height, width, c), dtype=np.float32)
@@ -126,11 +110,15 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
     return np.clip(out, 0.0, 1.0)
 
 
+def captures_size(engine) -> tuple[int, int] | None:
+    """(width, height) of the engine's captures at their own size; None when its bundle kept none."""
+    return engine.full_pixels[0].shape[1:3][::-1] if engine.bundle.has_full else None
+
+
 def sized(engine, frames: list, size: str | int = "full") -> list:
     """`frames` (engine.Frame, made at the working size) with their images at `size` ("working",
     "full", or a long side in pixels up to the captures'); each frame's confidence is unchanged."""
-    full = engine.bundle.mapped_pixels("full_images").shape[1:3][::-1] if engine.bundle.has_full else None
-    long = long_side(size, engine.manifest.model_config.resolution, full)
+    long = long_side(size, engine.manifest.model_config.resolution, captures_size(engine))
     if long == engine.manifest.model_config.resolution or not frames:
         return frames
     images = enlarge(engine, np.stack([f.image for f in frames]), np.stack([f.place for f in frames]), long)

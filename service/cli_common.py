@@ -78,10 +78,9 @@ def output_options(args) -> tuple[str | int, str, int]:
 
 def check_size(engine, size: str | int) -> tuple[int, int]:
     """(width, height) of `engine`'s frames at `size`; UsageError for a size the model cannot make."""
-    from ..models.fullsize import frame_size
+    from ..models.fullsize import captures_size, frame_size
 
-    full = engine.bundle.mapped_pixels("full_images").shape[1:3][::-1] if engine.bundle.has_full else None
     try:
-        return frame_size(size, engine.resolution, full)
+        return frame_size(size, engine.resolution, captures_size(engine))
     except ValueError as exc:
         raise UsageError(str(exc)) from None  # names `size`, the value and the model's range

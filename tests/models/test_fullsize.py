@@ -48,8 +48,10 @@ def two_capture_engine(photo):
     bundle = Bundle(manifest=None, model=None, arrays=arrays)
     scale = np.array([float(STEP)])
     u = params / scale
+    big = full.astype(np.float32) / 255.0
     return SimpleNamespace(bundle=bundle, space=space, scale=scale, refine=None, flow_cache=lpairs.FlowCache(),
-                           bracketer=lpairs.Bracketer(u, np.array([100.0])), captures=lambda idx: small[np.asarray(idx)])
+                           bracketer=lpairs.Bracketer(u, np.array([100.0])), full_pixels=(full, full[:0]),
+                           captures=lambda idx, full=False: (big if full else small)[np.asarray(idx)])
 
 
 def test_a_frame_between_two_shifted_crops_comes_out_at_full_size_as_the_true_crop(photo):
