@@ -30,7 +30,7 @@ from .refine import RefineConfig
 from .triplets import mine_triplets
 
 DEFAULT_TAU = 0.90
-MIN_FIT_ROWS, MIN_PER_CLASS = 12, 3  # fewer held-out frames, or of one kind, and no curve is fitted
+MIN_FIT_ROWS, MIN_PER_CLASS = 12, 3  # fewer held-out frames of a kind, or of one outcome: no curve
 SSIM_QUANTILES = (10, 50, 90)  # reported held-out SSIM quantiles of geodesic frames: which tau is reachable
 TUBES = (0.5, 0.75, 1.0, 1.5, 2.0)  # candidate tube radii, in local sample spacings
 MAX_SPAN = 12.0  # sample spacings: the longest calibration route (mining cost grows with its square)
@@ -236,34 +236,46 @@ def calibration_frames(engine: Engine, holdout_params: np.ndarray, holdout_image
     return np.vstack(sig), np.concatenate(ssim), kinds
 
 
+def _fit_kind(sig: np.ndarray, outcome: np.ndarray, names: list[str], tau: float, seed: int
+              ) -> tuple[dict, Calibration]:
+    """(model dict, how it was fitted) on one kind's calibration rows: a fitted curve, or where the
+    rows are too few of one kind one conservative rate for every frame (0 when no held-out frame
+    reached tau), never "no confidence" (a frame nobody judged is never let through)."""
+    n, good = len(outcome), int(outcome.sum())
+    base = dict(tau=tau, rows=n, faithful_share=round(good / n, 4) if n else None)
+    if n < MIN_FIT_ROWS or good < MIN_PER_CLASS or n - good < MIN_PER_CLASS:
+        bound = BoundConfidence(names, successes=good, trials=n)
+        status = (f"bound: {good} of {n} held-out frames reached SSIM {tau:g}, too few of one kind to fit a curve; "
+                  f"every frame gets {bound.rate:.3f}")
+        return bound.to_dict(), Calibration(status=status, **base)
+    model, report = fit_confidence(sig, outcome, names=names, seed=seed)
+    return model.to_dict(), Calibration(status="fitted", ece=report.get("ece"), auroc=report.get("auroc"),
+                                        method=report.get("method"), report=report, **base)
+
+
 def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,
                      tau: float = DEFAULT_TAU, seed: int = 0, refine: bool = True
-                     ) -> tuple[Confidence | None, Calibration]:
+                     ) -> tuple[Confidence, Calibration]:
     """(confidence, how it was fitted) for an engine whose bundle has no confidence yet, fitted on
-    its frames as a request with `refine` is served; the confidence is None when there were too
-    few frames of one kind to fit."""
+    its frames as a request with `refine` is served. The straight route's frames get a curve of
+    their own: with the same signals, a chord's frame is faithful less often than a geodesic's or
+    a fill's (it may cut across the manifold where no signal sees it), and one curve for both was
+    off on either (bench/RESULTS.md)."""
     if not 0.0 < tau < 1.0:
         raise ValueError(f"tau: {tau!r} is outside (0, 1)")
     sig, ssim, kinds = calibration_frames(engine, holdout_params, holdout_images, seed=seed, refine=refine)
     outcome = (ssim >= tau).astype(float)
-    geodesic = np.array([k == "geodesic" for k in kinds])
+    kind = np.array(kinds)
+    geodesic, straight = kind == "geodesic", kind == "straight"
     reach = ssim[geodesic] if geodesic.any() else ssim
-    base = dict(tau=tau, rows=int(len(outcome)), rows_by_kind={k: kinds.count(k) for k in sorted(set(kinds))},
-                faithful_share=round(float(outcome.mean()), 4) if len(outcome) else None,
-                ssim_quantiles={f"p{q}": round(float(np.quantile(reach, q / 100)), 4) for q in SSIM_QUANTILES}
-                if len(reach) else {})
     names = list(engine.scoring(refine)[0])
-    if len(outcome) < MIN_FIT_ROWS or outcome.sum() < MIN_PER_CLASS or (1 - outcome).sum() < MIN_PER_CLASS:
-        # too few frames of one kind to fit a curve: one conservative rate for every frame (0 when
-        # no held-out frame reached tau), never "no confidence" (a frame nobody judged is never let through)
-        bound = BoundConfidence(names, successes=int(outcome.sum()), trials=len(outcome))
-        status = (f"bound: {int(outcome.sum())} of {len(outcome)} held-out frames reached SSIM {tau:g}, too few of "
-                  f"one kind to fit a curve; every frame gets {bound.rate:.3f}")
-        return Confidence(tau=tau, signals=tuple(names), model=bound.to_dict()), Calibration(status=status, **base)
-    model, report = fit_confidence(sig, outcome, names=names, seed=seed)
-    summary = Calibration(status="fitted", ece=report.get("ece"), auroc=report.get("auroc"),
-                          method=report.get("method"), report=report, **base)
-    return Confidence(tau=tau, signals=tuple(names), model=model.to_dict()), summary
+    model, main = _fit_kind(sig[~straight], outcome[~straight], names, tau, seed)
+    line, chord = _fit_kind(sig[straight], outcome[straight], names, tau, seed)
+    summary = replace(main, rows=int(len(outcome)), rows_by_kind={k: kinds.count(k) for k in sorted(set(kinds))},
+                      faithful_share=round(float(outcome.mean()), 4) if len(outcome) else None,
+                      ssim_quantiles={f"p{q}": round(float(np.quantile(reach, q / 100)), 4) for q in SSIM_QUANTILES}
+                      if len(reach) else {}, straight=chord)
+    return Confidence(tau=tau, signals=tuple(names), model=model, straight=line), summary
 
 
 def calibrate_decoded(engine: Engine, holdout_params: np.ndarray, holdout_images: np.ndarray, *,

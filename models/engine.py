@@ -172,6 +172,7 @@ class Engine:
         self.spacing = float(np.median(nn[:, 1]))  # typical code distance between bank neighbours
         conf = self.manifest.confidence
         self.confidence = None if conf is None else conf.predictor()
+        self.straight_confidence = None if conf is None else conf.predictor("straight")
         self.tau = None if conf is None else conf.tau
         # a model computes only the signals its confidence was fitted on
         self.signal_names = conf.signals if conf is not None else fitted_signals(self.refine)
@@ -179,6 +180,7 @@ class Engine:
         # skips detail transfer (refine=False) is scored with; None for bundles trained without one
         plain = chosen.decoded_confidence
         self.decoded_confidence = None if plain is None else plain.predictor()
+        self.decoded_straight_confidence = None if plain is None else plain.predictor("straight")
         self.decoded_signal_names = FITTED_SIGNALS if plain is None else plain.signals
         for where, names in (("confidence", self.signal_names),
                              ("refine.decoded_confidence", self.decoded_signal_names)):
@@ -277,12 +279,15 @@ class Engine:
             return images, None
         return self.refined(codes, images, place=place, rank=rank)
 
-    def scoring(self, refine: bool = True) -> tuple[tuple[str, ...], ConfidenceModel | None]:
-        """(signal names, confidence model) for frames rendered with `refine`: a refining model's
-        decoded frames have their own confidence (None until fitted, or for older bundles)."""
+    def scoring(self, refine: bool = True, route: str = "geodesic"
+                ) -> tuple[tuple[str, ...], ConfidenceModel | None]:
+        """(signal names, confidence model) for frames of `route` (a settings fill: "geodesic")
+        rendered with `refine`: a refining model's decoded frames have their own confidence (None
+        until fitted, or for older bundles), and the straight route's frames their own curve."""
+        chord = route == "straight"
         if refine or self.refine is None:
-            return self.signal_names, self.confidence
-        return self.decoded_signal_names, self.decoded_confidence
+            return self.signal_names, self.straight_confidence if chord else self.confidence
+        return self.decoded_signal_names, self.decoded_straight_confidence if chord else self.decoded_confidence
 
     resolution = property(lambda self: self.manifest.resolution, doc="pixels per side of the model's images")
     channels = property(lambda self: self.manifest.channels, doc="1 (grayscale) or 3 (RGB)")
@@ -373,11 +378,12 @@ class Engine:
         return np.stack([make[n]() for n in names], axis=1).reshape(len(codes), len(names))
 
     def frames_at(self, codes: np.ndarray, t: np.ndarray, intended: np.ndarray, min_confidence: float = 0.5,
-                  refine: bool = True, place: np.ndarray | None = None) -> list[Frame]:
+                  refine: bool = True, place: np.ndarray | None = None, route: str = "geodesic") -> list[Frame]:
         """Frames for `codes` (N, d) at route fractions `t`, each meant to show the settings
-        `intended` (N, P): rendered, read by the code-to-settings head, scored (as between does).
-        `place`: where a frame made from bracketing captures is made (default: the settings the code shows)."""
-        names, model = self.scoring(refine)
+        `intended` (N, P): rendered, read by the code-to-settings head, scored (as between does)
+        by the confidence of `route`'s frames. `place`: where a frame made from bracketing captures
+        is made (default: the settings the code shows)."""
+        names, model = self.scoring(refine, route)
         if model is None and self.confidence is not None:
             raise ValueError("refine: this model version has no confidence fitted on frames without "
                              "detail transfer; ask with refine true, or train a new version")
@@ -413,7 +419,7 @@ class Engine:
         along = way.settings_at(t)
         intended = self.space.lerp(ps, pe, t) if along is None else along
         # a geodesic's frames are made where the route puts them; the straight route's where its codes lie
-        frames = self.frames_at(codes, t, intended, min_confidence, refine, place=along)
+        frames = self.frames_at(codes, t, intended, min_confidence, refine, place=along, route=route)
         placed = placed_start and placed_end
         if not placed:  # the frames' settings rest on ends it could not place: nobody judged them
             for f in frames:

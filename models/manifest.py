@@ -110,6 +110,10 @@ class Confidence:
     tau: float                     # SSIM threshold, in (0, 1)
     signals: tuple[str, ...]       # the off-manifold signals it reads, in its column order
     model: Mapping[str, Any]       # ConfidenceModel.to_dict(): combiner and calibrator
+    # the straight route's frames have their own curve (ConfidenceModel.to_dict() on the same
+    # signals): a chord's frame with the same signals is faithful less often than a geodesic's.
+    # None: bundles trained before it, whose one model scores every frame
+    straight: Mapping[str, Any] | None = None
 
     @property
     def method(self) -> str:
@@ -118,28 +122,36 @@ class Confidence:
         calibrator = self.model.get("calibrator")
         return self.model["kind"] if calibrator is None else calibrator["method"]
 
-    def predictor(self) -> ConfidenceModel | BoundConfidence:
-        return ConfidenceModel.from_dict(self.model)
+    def predictor(self, route: str = "geodesic") -> ConfidenceModel | BoundConfidence:
+        """The model that scores frames of `route` (settings fills: "geodesic")."""
+        model = self.straight if route == "straight" and self.straight is not None else self.model
+        return ConfidenceModel.from_dict(model)
 
     def to_dict(self) -> dict:
-        return {"tau": self.tau, "signals": list(self.signals), "model": dict(self.model)}
+        out = {"tau": self.tau, "signals": list(self.signals), "model": dict(self.model)}
+        if self.straight is not None:
+            out["straight"] = dict(self.straight)
+        return out
 
     @classmethod
     def from_dict(cls, value: Any, where: str, legacy: bool = False) -> "Confidence | None":
         if value is None:
             return None
-        d = _obj(value, where, ("tau", "signals", "model"))
+        d = _obj(value, where, ("tau", "signals", "model", "straight"))
         signals = _key(d, "signals", where, legacy, list(LEGACY_SIGNALS))
         if (not isinstance(signals, list) or not signals
                 or not all(isinstance(s, str) for s in signals)):
             raise BundleError(f"{where}.signals: {signals!r:.80} is not a list of signal names")
         model = _obj(_key(d, "model", where, legacy), f"{where}.model")
-        try:
-            ConfidenceModel.from_dict(model)
-        except (KeyError, TypeError, ValueError) as exc:
-            raise BundleError(f"{where}.model: {exc}") from None
+        straight = None if d.get("straight") is None else _obj(d["straight"], f"{where}.straight")
+        for key, m in (("model", model), ("straight", straight)):
+            try:
+                if m is not None:
+                    ConfidenceModel.from_dict(m)
+            except (LookupError, TypeError, ValueError) as exc:
+                raise BundleError(f"{where}.{key}: {exc}") from None
         return cls(tau=_num(_key(d, "tau", where, legacy), f"{where}.tau", lo=0.0, hi=1.0),
-                   signals=tuple(signals), model=model)
+                   signals=tuple(signals), model=model, straight=straight)
 
 
 @dataclass(frozen=True)
@@ -156,16 +168,17 @@ class Calibration:
     method: str | None = None                   # "platt" or "isotonic"
     report: Mapping[str, Any] | None = None     # the fit's own report (reliability bins and more)
     decoded_frames: "Calibration | None" = None  # a refining model's second confidence, on decoded frames
+    straight: "Calibration | None" = None  # the straight route's own curve, fitted on its frames only
 
     FIELDS = ("tau", "rows", "rows_by_kind", "faithful_share", "ssim_quantiles", "status", "ece", "auroc", "method",
-              "report", "decoded_frames")
+              "report", "decoded_frames", "straight")
 
     def to_dict(self) -> dict:
         out = {"tau": self.tau, "rows": self.rows, "rows_by_kind": dict(self.rows_by_kind),
                "faithful_share": self.faithful_share, "status": self.status}
         if self.ssim_quantiles:  # bundles trained before it was recorded have none
             out["ssim_quantiles"] = dict(self.ssim_quantiles)
-        for key in ("ece", "auroc", "method", "report", "decoded_frames"):
+        for key in ("ece", "auroc", "method", "report", "decoded_frames", "straight"):
             value = getattr(self, key)
             if value is not None:
                 out[key] = value.to_dict() if isinstance(value, Calibration) else value
@@ -189,7 +202,8 @@ class Calibration:
                    auroc=_num(d.get("auroc"), f"{where}.auroc", none=True),
                    method=_str(d.get("method"), f"{where}.method", none=True),
                    report=None if report is None else _obj(report, f"{where}.report"),
-                   decoded_frames=cls.from_dict(d.get("decoded_frames"), f"{where}.decoded_frames"))
+                   decoded_frames=cls.from_dict(d.get("decoded_frames"), f"{where}.decoded_frames"),
+                   straight=cls.from_dict(d.get("straight"), f"{where}.straight"))
 
 
 @dataclass(frozen=True)

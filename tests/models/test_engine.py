@@ -278,3 +278,34 @@ def test_a_misread_image_end_is_searched_back_to_its_settings(small_engine):
     found, placed = placing.place(small_engine, bank[7], code, wrong, tau=small_engine.tau)
     assert placed and float(small_engine.space.distance(found, params[7], small_engine.scale)) < 0.05
     assert placing.agreement(small_engine, bank[7], found[None])[0] >= placing.FOUND
+
+
+def test_the_straight_route_is_scored_by_its_own_curve(small_engine):
+    # calibration fits the chord's frames apart from the geodesic's and the fills': each curve on
+    # its own kind of held-out frames, both stored with the model
+    conf = small_engine.manifest.confidence
+    report = small_engine.manifest.metrics.calibration
+    assert conf.straight is not None and conf.straight != conf.model
+    assert report.straight.rows == report.rows_by_kind["straight"] > 0
+    ans = small_engine.between(P(0, 40), P(150, 40), frames=5, route="straight")
+    names = small_engine.signal_names
+    sig = np.array([[f.signals[n] for n in names] for f in ans.frames])
+    assert [f.confidence for f in ans.frames] == pytest.approx(list(conf.predictor("straight").predict(sig)))
+    geo = small_engine.between(P(0, 40), P(150, 40), frames=5)
+    sig = np.array([[f.signals[n] for n in names] for f in geo.frames])
+    assert [f.confidence for f in geo.frames] == pytest.approx(list(conf.predictor().predict(sig)))
+
+
+def test_a_straight_curve_with_nothing_to_fit_on_rejects_every_chord_frame():
+    # no straight frame among the held-out rows: the chord's curve is the conservative bound of zero
+    # faithful in zero (0.0; scipy.stats.beta is the reference in test_confidence_bound), while the
+    # other kinds still get a fitted curve
+    from geotween.models.calibrate import _fit_kind
+
+    rng = np.random.default_rng(1)
+    sig = rng.random((200, 2))
+    model, how = _fit_kind(sig, (sig.sum(1) < 1).astype(float), ["cycle", "settings"], 0.9, 0)
+    assert how.status == "fitted" and "calibrator" in model
+    none, how = _fit_kind(sig[:0], np.zeros(0), ["cycle", "settings"], 0.9, 0)
+    assert none["kind"] == "bound" and none["rate"] == 0.0 and how.rows == 0
+    assert how.status.startswith("bound: 0 of 0")

@@ -155,6 +155,9 @@ def _set(path: str, value):
     (_set("confidence.tau", 1.5), "confidence.tau"),
     (_set("confidence.signals", "cycle"), "confidence.signals"),
     (_set("confidence.model.calibrator.method", "guess"), "confidence.model"),
+    (_set("confidence.straight", "steep"), "confidence.straight"),
+    (_set("confidence.straight", {"kind": "bound"}), "confidence.straight"),
+    (_set("metrics.confidence.straight", {"rows": "many"}), "metrics.confidence.straight"),
     (_set("refine.decoded_confidence.model.combiner", None), "refine.decoded_confidence.model"),
     (_set("metrics.holdout_psnr", "good"), "metrics.holdout_psnr"),
     (_set("metrics.confidence.rows", -3), "metrics.confidence.rows"),
@@ -183,3 +186,17 @@ def test_serving_config_overrides_the_bundles_choices_and_checks_its_values():
                       (dict(graph_k=2.5), "graph_k")):
         with pytest.raises(ValueError, match=name):
             ServingConfig(**bad)
+
+
+def test_a_confidence_without_a_straight_curve_scores_chords_with_its_one_model():
+    # bundles written before the straight route had its own curve: one model for every frame
+    from geotween.models.manifest import Confidence
+
+    model = {"kind": "bound", "names": ["cycle"], "successes": 3, "trials": 10, "level": 0.95}
+    chord = {**model, "successes": 0}
+    old = Confidence.from_dict({"tau": 0.9, "signals": ["cycle"], "model": model}, "confidence")
+    assert old.straight is None and "straight" not in old.to_dict()
+    assert old.predictor("straight").rate == old.predictor().rate > 0
+    new = Confidence.from_dict({**old.to_dict(), "straight": chord}, "confidence")
+    assert new.to_dict()["straight"] == chord
+    assert new.predictor("straight").rate == 0.0 < new.predictor("geodesic").rate
