@@ -382,7 +382,7 @@ class Manifest:
 
     def calibration_summary(self) -> dict:
         """{"fitted", "kind", "tau", "method", "signals", "ece", "auroc", "status", "ssim_quantiles",
-        "warning"}: the confidence and how it was fitted, as the describe answer shows them. kind:
+        "warning", "straight"}: the confidence and how it was fitted, as the describe answer shows them. kind:
         "fitted" (a curve), "bound" (one conservative rate for every frame) or "none" (no
         confidence: every frame is rejected); warning: plain words when frames will be rejected
         whatever they look like, else None."""
@@ -402,7 +402,15 @@ class Manifest:
         return {"fitted": kind == "fitted", "kind": kind, "tau": tau, "method": report.method if conf is None
                 else conf.method, "signals": [] if conf is None else list(conf.signals), "ece": report.ece,
                 "auroc": report.auroc, "status": report.status or ("fitted" if conf is not None else "not calibrated"),
-                "ssim_quantiles": dict(report.ssim_quantiles), "warning": warning}
+                "ssim_quantiles": dict(report.ssim_quantiles), "warning": warning,
+                "straight": None if conf is None or conf.straight is None else self._straight_curve(conf, report)}
+
+    @staticmethod
+    def _straight_curve(conf: Confidence, report: Calibration) -> dict:
+        fit = report.straight or Calibration(status=None)
+        bound = conf.straight.get("kind") == BoundConfidence.KIND
+        return {"kind": "bound" if bound else "fitted", "method": None if bound else conf.straight["calibrator"]["method"],
+                "ece": fit.ece, "auroc": fit.auroc, "rows": fit.rows}
 
     def to_dict(self) -> dict:
         """The JSON object manifest.json holds."""

@@ -125,7 +125,11 @@ def confidence_line(manifest) -> str:
     head = f"confidence: P(SSIM >= {c['tau']:g}), {c['method']}"
     if c["kind"] == "fitted" and c["ece"] is not None:
         head += f", ECE {c['ece']:.3f}, AUROC {c['auroc']:.3f}"
-    return head + reach_text + (f" -- warning: {c['warning']}" if c["warning"] else "")
+    s = c["straight"]
+    chord = ("" if s is None else "; straight route: one conservative rate" if s["kind"] == "bound"
+             else f"; straight route: its own curve, ECE {s['ece']:.3f}, AUROC {s['auroc']:.3f}"
+             if s["ece"] is not None else "; straight route: its own curve")
+    return head + reach_text + chord + (f" -- warning: {c['warning']}" if c["warning"] else "")
 
 
 def parse_end(text: str, engine) -> "Endpoint":

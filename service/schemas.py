@@ -359,6 +359,15 @@ class ParameterOut(_Out):
     periodic: bool
 
 
+class CurveOut(_Out):
+    kind: Literal["fitted", "bound"] = Field(description="'fitted': a calibrated curve; 'bound': one conservative "
+                                                         "rate for every frame of its kind")
+    method: str | None = Field(description="'platt' or 'isotonic'; null for a bound")
+    ece: float | None = Field(description="expected calibration error (15 bins) on held-out frames of its kind")
+    auroc: float | None
+    rows: int | None = Field(description="held-out frames of its kind with a known truth")
+
+
 class CalibrationOut(_Out):
     fitted: bool = Field(description="true when a confidence curve was fitted on held-out frames")
     kind: Literal["fitted", "bound", "none"] | None = Field(
@@ -375,6 +384,9 @@ class CalibrationOut(_Out):
                                                          "against their truth: which tau this model can reach")
     warning: str | None = Field(None, description="plain words when this model's frames are rejected whatever they "
                                             "look like (no confidence, or one below most min_confidence values)")
+    straight: CurveOut | None = Field(None, description="the straight route's own curve: its frames are scored apart "
+                                      "from the geodesic's and the fills' (the fields above); null: one curve scores "
+                                      "every frame (models trained before it)")
 
 
 class ScoreOut(_Out):

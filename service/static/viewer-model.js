@@ -37,6 +37,9 @@ export function showInfo(detail) {
   add(main, "confidence", confidenceKind(c));
   if (typeof c.tau === "number") add(main, "SSIM threshold (tau)", fmt(c.tau, 2));
   if (c.fitted) add(main, "ECE / AUROC", fmt(c.ece, 3) + " / " + fmt(c.auroc, 3));
+  const s = c.straight;  // the straight route's frames are scored by a curve of their own
+  if (s) add(more, "straight route's confidence", s.kind === "bound" ? "one conservative rate"
+    : s.method + ", ECE " + fmt(s.ece, 3) + " / AUROC " + fmt(s.auroc, 3));
   const q = c.ssim_quantiles || {};
   if (["p10", "p50", "p90"].every((k) => typeof q[k] === "number")) {
     add(main, "held-out SSIM p10 / p50 / p90", fmt(q.p10, 3) + " / " + fmt(q.p50, 3) + " / " + fmt(q.p90, 3));

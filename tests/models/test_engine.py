@@ -287,6 +287,8 @@ def test_the_straight_route_is_scored_by_its_own_curve(small_engine):
     report = small_engine.manifest.metrics.calibration
     assert conf.straight is not None and conf.straight != conf.model
     assert report.straight.rows == report.rows_by_kind["straight"] > 0
+    shown = small_engine.manifest.calibration_summary()["straight"]  # as the describe answer shows it
+    assert shown["rows"] == report.straight.rows and shown["kind"] in ("fitted", "bound")
     ans = small_engine.between(P(0, 40), P(150, 40), frames=5, route="straight")
     names = small_engine.signal_names
     sig = np.array([[f.signals[n] for n in names] for f in ans.frames])

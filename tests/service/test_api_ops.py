@@ -51,6 +51,7 @@ def test_list_and_describe_models(client, registry):
     cal = client.get("/v1/models/tile-cal").json()["calibration"]
     assert cal["fitted"] is True and cal["tau"] == 0.9 and cal["signals"] == list(SIGNALS)
     assert cal["method"] in ("platt", "isotonic")
+    assert cal["straight"] is None  # stored without a curve of the straight route's own: one curve for all
 
 
 

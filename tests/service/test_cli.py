@@ -60,7 +60,8 @@ def test_a_tau_the_model_cannot_reach_warns_and_every_frame_is_rejected(demo_dir
     err = capsys.readouterr().err
     assert "warning: tile@1" in err and "reached SSIM 0.999" in err and "--tau" in err
     assert main(["--registry", reg, "models"]) == 0
-    assert "confidence: P(SSIM >= 0.999), bound" in capsys.readouterr().out
+    listed = capsys.readouterr().out
+    assert "confidence: P(SSIM >= 0.999), bound" in listed and "straight route: one conservative rate" in listed
     out = tmp_path / "frames"
     code = main(["--registry", reg, "between", "tile", "lamp_azimuth=10,lamp_elevation=30",
                  "lamp_azimuth=170,lamp_elevation=30", "--frames", "4", "--out", str(out), "--strict"])

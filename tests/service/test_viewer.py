@@ -211,6 +211,13 @@ def _check_trust(page, cal: dict) -> None:
         assert got == pytest.approx([cal["ssim_quantiles"][k] for k in ("p10", "p50", "p90")], abs=0.0006)
     else:
         assert quantiles is None
+    chord = shown.get("straight route's confidence")
+    if cal.get("straight") is None:
+        assert chord is None
+    elif cal["straight"]["kind"] == "bound":
+        assert chord == "one conservative rate"
+    else:
+        assert chord.startswith(cal["straight"]["method"] + ", ECE "), chord
     alert = page.locator("#model-info [role=alert]")
     if cal["warning"] is None:
         expect(alert).to_have_count(0)
