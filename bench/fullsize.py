@@ -1,12 +1,13 @@
-"""Frames at full size: a model trained at 64 px, its captures kept at SIZE px, scored against true
-SIZE px views, beside what a user could do without it at that size.
+"""Frames at full size: a model at its working size (64 px), its captures kept at SIZE px, scored
+against true SIZE px views, beside what a user could do without it at that size.
 
-    python bench/fullsize.py BUNDLE_DIR KIND [--size 512] [--pairs 20] [--out DIR]
+    python bench/fullsize.py KIND [--bundle BUNDLE_DIR] [--size 512] [--pairs 20] [--out DIR]
 
-BUNDLE_DIR is a bundle bench/quality.py trained on scene KIND (demo, turntable, camera, ...) at the
-working size. The scene is written again at SIZE px (the renderers are resolution-free; the settings
-are the same), the bundle is rewritten with those captures kept at full size (same weights, same
-choices), and on a SIZE px truth set (image ends) every frame is scored at the working size and at
+Without --bundle (as bench/run measures) the model is trained here from scene KIND's SIZE px
+captures, as `geotween train` does with them (`train_full`). With --bundle, a bundle bench/quality.py
+trained on scene KIND at the working size gets the SIZE px render's captures kept beside its own
+(same weights, same choices; quicker, but its working images are a 64 px render, not the large one
+brought down). On a SIZE px truth set (image ends) every frame is scored at the working size and at
 SIZE against its true view: the geodesic as served at full size, the same frames only enlarged
 (bicubic), a cross-dissolve and dense flow (Farneback) between the full-size ends, and the nearest
 capture at full size. PSNR and SSIM from scikit-image (Gaussian SSIM, sigma 1.5).
@@ -59,8 +60,26 @@ def with_full_captures(bundle: Path, scene_dir: Path, out: Path) -> Path:
     return out
 
 
-def measure(bundle: str | Path, kind: str, *, size: int = 512, pairs: int = 20, long_pairs: int = 6,
-            out: str | Path | None = None) -> dict:
+def train_full(scene_dir: Path, size: int, out: Path, *, resolution: int = 64, steps: int | None = None) -> Path:
+    """A model trained at `resolution` px from the SIZE px captures of `scene_dir`, kept at full size in its bundle,
+    as `geotween train` does with such captures (the working images are the full ones brought down:
+    a bundle trained on a 64 px render of the scene would be judged against another picture, since a
+    renderer at 64 px does not draw its scene as the 512 px render brought down)."""
+    from geotween.models.pipeline import train_bundle
+    from geotween.models.scene import load_scene
+    from geotween.models.train import TrainConfig, default_model_config
+
+    scene = load_scene(scene_dir, resolution=resolution, max_size=size)
+    cfg = TrainConfig()
+    if steps is not None:
+        cfg.steps = steps
+    train_bundle(scene, out / "trained", name=scene.name, model_config=default_model_config(scene), train_config=cfg,
+                 progress=None)
+    return out / "trained"
+
+
+def measure(bundle: str | Path | None, kind: str, *, size: int = 512, pairs: int = 20, long_pairs: int = 6,
+            out: str | Path | None = None, steps: int | None = None, resolution: int = 64) -> dict:
     from geotween.models import flow as lflow
     from geotween.models import fullsize as lfull
     from geotween.models.engine import Endpoint, Engine
@@ -68,8 +87,15 @@ def measure(bundle: str | Path, kind: str, *, size: int = 512, pairs: int = 20, 
 
     set_threads()
     scene_dir, truth_dir = scene_folders(kind, size=size, pairs=pairs, long_pairs=long_pairs)
-    out = Path(out) if out is not None else Path(bundle).parent / f"fullsize-{kind}-{size}"
-    full_bundle = with_full_captures(Path(bundle), scene_dir, out / "bundle")
+    if out is None:
+        out = (Path(bundle).parent if bundle is not None else Path.cwd()) / f"fullsize-{kind}-{size}"
+    out = Path(out)
+    if bundle is None:  # trained here from the full-size captures (train_full)
+        t0 = time.perf_counter()
+        full_bundle = train_full(scene_dir, size, out, resolution=resolution, steps=steps)
+        train_s = time.perf_counter() - t0
+    else:
+        full_bundle, train_s = with_full_captures(Path(bundle), scene_dir, out / "bundle"), None
     engine = Engine.load(full_bundle)
     res, ch = engine.resolution, engine.channels
     small, big = load_truth(truth_dir, res, ch), load_truth(truth_dir, size, ch)
@@ -106,20 +132,21 @@ def measure(bundle: str | Path, kind: str, *, size: int = 512, pairs: int = 20, 
     summary = {"scene": kind, "size": size, "working": res, "pairs": len(small), "frames": len(scores["flow"]["ssim"]),
                "frames_between_captures": int(away.sum()),
                "methods": table, "enlarge_ms_per_frame": round(1e3 * sum(timing) / max(1, len(scores["flow"]["ssim"])), 1),
-               "bundle": str(full_bundle)}
+               "trained_here_s": None if train_s is None else round(train_s, 1), "bundle": str(full_bundle)}
     (out / "fullsize.json").write_text(json.dumps(summary, indent=1))
     return summary
 
 
 def main() -> None:
     p = argparse.ArgumentParser()
-    p.add_argument("bundle")
     p.add_argument("kind")
+    p.add_argument("--bundle", default=None, help="a bundle trained on KIND at the working size (default: train one)")
     p.add_argument("--size", type=int, default=512)
     p.add_argument("--pairs", type=int, default=20)
     p.add_argument("--out", default=None)
     args = p.parse_args()
-    print(json.dumps(measure(args.bundle, args.kind, size=args.size, pairs=args.pairs, out=args.out), indent=1))
+    out = args.out or (None if args.bundle else f"fullsize-{args.kind}-{args.size}")
+    print(json.dumps(measure(args.bundle, args.kind, size=args.size, pairs=args.pairs, out=out), indent=1))
 
 
 if __name__ == "__main__":

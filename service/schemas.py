@@ -46,8 +46,9 @@ class _Request(BaseModel):
 
 SIZE = ("the frames' size: 'full' (the default: the captures' own size, kept up to the cap set at training; "
         "the model's own when it kept none), 'working' (the model's resolution), or a long side in pixels "
-        "from 8 up to the captures'. Each frame is judged at the working size; a larger one takes its detail "
-        "from the two captures around it, only where they agree with it")
+        "from 8 up to the captures'. Each frame is judged at the working size; a larger one is made from the "
+        "two captures around it, at their own size, with the judged frame's broad difference from them added, "
+        "only where they agree with it (elsewhere it is the judged frame enlarged)")
 
 
 MIN_SIDE, MAX_SIDE = 8, 16384  # a frame's long side in pixels, whatever the model (each model caps it lower)

@@ -66,10 +66,14 @@ def test_a_frame_between_two_shifted_crops_comes_out_at_full_size_as_the_true_cr
     # at a capture's own settings the full-size frame is that capture
     at_capture = lfull.enlarge(engine, crop(photo, 0, SMALL)[None], np.array([[0.0]]), FULL)[0]
     assert ssim(at_capture, crop(photo, 0, FULL)) > 0.97
-    # where the captures disagree with the served frame, the served frame (enlarged) is kept
-    grey = np.full((1, SMALL, SMALL, 3), 0.5, np.float32)
-    kept = lfull.enlarge(engine, grey, np.array([[STEP / 2]]), FULL)[0]
-    assert np.abs(kept - 0.5).mean() < 0.02
+    # where the captures disagree with the served frame, the served frame (enlarged) is kept: a white
+    # frame over the photograph, looked at where the photograph is far from white (3 AGREE away)
+    white = np.ones((1, SMALL, SMALL, 3), np.float32)
+    kept = lfull.enlarge(engine, white, np.array([[STEP / 2]]), FULL)[0]
+    far = (1.0 - crop(photo, STEP / 2, SMALL)).mean(axis=-1) > 3 * lfull.AGREE
+    far = lfull.resize(far[None, ..., None].astype(np.float32), FULL, FULL)[0, ..., 0] > 0.99
+    assert far.mean() > 0.05
+    assert np.abs(kept[far] - 1.0).mean() < 0.02
 
 
 def test_resampling_matches_scikit_image(photo):
