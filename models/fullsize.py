@@ -17,6 +17,8 @@ confidence judged, the frame is F enlarged. A frame is still synthesized, not ca
 """
 from __future__ import annotations
 
+from collections import OrderedDict
+
 import cv2
 import numpy as np
 
@@ -28,6 +30,7 @@ AGREE = 0.2    # mean absolute difference (0-1 scale) at working size at which a
 # Measured on frames between captures (bench/RESULTS.md): with no blur and AGREE 0.1 the lamp tile
 # at 256 px lost to its nearest capture (0.940 against 0.972); with these it wins (0.975)
 SIGMA = 1.5
+HELD = 4  # full-size captures an enlargement keeps at hand as floats
 
 
 def long_side(size: str | int, working: int, full: tuple[int, int] | None) -> int:
@@ -88,25 +91,35 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
     single = (bracket.first == bracket.second) | (bracket.at <= 1e-6) | (bracket.at >= 1 - 1e-6)
     # the pair flows of a model that makes frames from pairs (shared with its cache), else DIS
     method = engine.refine.flow if engine.refine is not None and engine.refine.mode == "pair" else "dis"
-    used = sorted({int(k) for k in np.concatenate([bracket.first, bracket.second])})
-    big = dict(zip(used, resize(engine.captures(np.asarray(used), full=True), width, height)))
-    small = dict(zip(used, engine.captures(np.asarray(used))))
-    base = resize(frames, width, height)
+    # captures are read and resized as frames need them, a few at a time (consecutive frames share
+    # them): a 16-frame answer at 512 px would otherwise hold 32 of them as floats at once
+    held: OrderedDict[int, np.ndarray] = OrderedDict()
+
+    def big(k: int) -> np.ndarray:
+        if k not in held:
+            held[k] = resize(engine.captures(np.array([k]), full=True), width, height)[0]
+            if len(held) > HELD:
+                held.popitem(last=False)
+        held.move_to_end(k)
+        return held[k]
+
     out = np.empty((n, height, width, c), dtype=np.float32)
     for f in range(n):
         i, j, at = int(bracket.first[f]), int(bracket.second[f]), float(bracket.at[f])
         if single[f]:
-            moved = [(big[j if at >= 0.5 else i], 1.0)]
+            moved = [(big(j if at >= 0.5 else i), 1.0)]
         else:
             key = (method, i, j)
             flows = engine.flow_cache.get(key)
             if flows is None:
-                flows = lpairs.pair_flows(small[i], small[j], method)
+                small = engine.captures(np.array([i, j]))
+                flows = lpairs.pair_flows(small[0], small[1], method)
                 engine.flow_cache.put(key, flows)
-            wa, va, wb, vb = lpairs.moved(big[i], big[j], at, _scaled(flows, width, height))
+            wa, va, wb, vb = lpairs.moved(big(i), big(j), at, _scaled(flows, width, height))
             moved = [(wa, (1.0 - at) * va), (wb, at * vb)]
         # each moved capture with the served frame's broad difference, where it agrees with it:
         # large = up(F) + sum_k share_k * agree_k * (C_k - up(F)) / sum_k share_k
+        base = resize(frames[f][None], width, height)[0]
         total = np.zeros((height, width, c), np.float32)
         shares = np.zeros((height, width, 1), np.float32)
         for img, share in moved:
@@ -114,10 +127,10 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
             agree = np.exp(-(np.abs(back - frames[f]).mean(axis=-1, keepdims=True) / AGREE) ** 2)
             broad = cv2.GaussianBlur(frames[f] - back, (0, 0), SIGMA).reshape(h, w, c)
             total += share * resize(agree[None], width, height, enlarge=cv2.INTER_LINEAR)[0] * (
-                img + resize(broad[None], width, height)[0] - base[f])
+                img + resize(broad[None], width, height)[0] - base)
             shares += share
-        out[f] = base[f] + total / np.maximum(shares, 1e-6)
-    return np.clip(out, 0.0, 1.0)
+        np.clip(base + total / np.maximum(shares, 1e-6), 0.0, 1.0, out=out[f])
+    return out
 
 
 def captures_size(engine) -> tuple[int, int] | None:

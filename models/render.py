@@ -140,12 +140,20 @@ def shadow_mask(h: np.ndarray, azimuth_deg: float, elevation_deg: float, *,
     return shadow
 
 
+FINE = 512  # px: from here on the renderer takes one sample per pixel
+
+
 def render(azimuth_deg: float, elevation_deg: float, size: int = 64, *, tile: Tile = Tile(),
-           supersample: int = 2, colour: bool = False) -> np.ndarray:
+           supersample: int | None = None, colour: bool = False) -> np.ndarray:
     """Float32 image in [0, 1] of the tile lit from the given lamp direction (degrees).
 
     (size, size) grayscale, or (size, size, 3) RGB with colour=True (per-feature albedo).
+    `supersample` (None: 2 below FINE px, else 1): samples per pixel side, box-averaged. From FINE px
+    up a pixel is finer than the relief's edges (softened over 1/64 of the tile, 8 px at 512), so
+    more samples add nothing but time (the cast-shadow march is most of it).
     """
+    if supersample is None:
+        supersample = 2 if size < FINE else 1
     hi = size * supersample
     h, masks = _relief(hi, tile)
     gy, gx = np.gradient(h, 1.0 / hi)  # slopes, rows = y
