@@ -1,7 +1,9 @@
 """Frames at the captures' own size. The model works small: it decides where a frame lies, makes it at
 its working size and judges it there. The pixels of the large frame come from the real captures
 around it, at their own size. Each of the two captures that bracket the frame, moved to the
-frame's place (models.pairs, with the flows estimated at the working size and scaled up), gives
+frame's place, gives (moved along one map fitted at full size where one map moves the whole
+picture, models.motion; else along the dense flows estimated at the working size and scaled up,
+models.pairs)
 
     C_k = B_k + up(blur(F - down(B_k)))
 
@@ -22,6 +24,7 @@ from collections import OrderedDict
 import cv2
 import numpy as np
 
+from . import motion as lmotion
 from . import pairs as lpairs
 
 AGREE = 0.2    # mean absolute difference (0-1 scale) at working size at which a capture's share fades to 1/e
@@ -115,7 +118,11 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
                 small = engine.captures(np.array([i, j]))
                 flows = lpairs.pair_flows(small[0], small[1], method)
                 engine.flow_cache.put(key, flows)
-            wa, va, wb, vb = lpairs.moved(big(i), big(j), at, _scaled(flows, width, height))
+            motion = global_motion(engine, i, j, flows)
+            if motion is not None:  # one map moves the whole picture: followed at full size
+                wa, va, wb, vb = motion.moved(big(i), big(j), at)
+            else:
+                wa, va, wb, vb = lpairs.moved(big(i), big(j), at, _scaled(flows, width, height))
             moved = [(wa, (1.0 - at) * va), (wb, at * vb)]
         # each moved capture with the served frame's broad difference, where it agrees with it:
         # large = up(F) + sum_k share_k * agree_k * (C_k - up(F)) / sum_k share_k
@@ -131,6 +138,26 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
             shares += share
         np.clip(base + total / np.maximum(shares, 1e-6), 0.0, 1.0, out=out[f])
     return out
+
+
+def global_motion(engine, i: int, j: int, flows: lpairs.PairFlows) -> lmotion.GlobalMotion | None:
+    """The global motion of capture pair (i, j) (models.motion.fit at the captures' own size, which
+    the homography needs; kept in the engine's flow cache), or None where the pair moves otherwise."""
+    key = ("global", i, j)
+    found = engine.flow_cache.get(key)
+    if found is None:
+        full = engine.captures(np.array([i, j]), full=True)
+        small = engine.captures(np.array([i, j]))
+        found = lmotion.fit(full[0], full[1], small[0], small[1], flows.ab) or NO_GLOBAL
+        engine.flow_cache.put(key, found)
+    return None if found is NO_GLOBAL else found
+
+
+class _NoGlobal:
+    nbytes = 64
+
+
+NO_GLOBAL = _NoGlobal()  # cached for pairs whose motion is not global
 
 
 def captures_size(engine) -> tuple[int, int] | None:
