@@ -115,7 +115,18 @@ def test_a_map_rewritten_for_another_size_keeps_pixel_centres():
     assert np.allclose(p[:2] / p[2], c[:2])
 
 
-def test_a_flat_grey_pair_claims_no_motion():
-    grey = np.full((SIDE, SIDE, 3), 0.5, np.float32)
-    small = grey[:SMALL, :SMALL]
-    assert lmotion.fit(grey, grey, small, small, np.zeros((SMALL, SMALL, 2), np.float32)) is None
+def test_where_only_the_light_moves_nothing_is_moved():
+    # the lamp tile under two lamp directions 15 deg apart: its shading changes, its relief stays put
+    from geotween.models.render import render
+
+    a, b = render(90.0, 40.0, SIDE, colour=True), render(105.0, 40.0, SIDE, colour=True)
+    a_s, b_s = lfull.resize(a[None], SMALL, SMALL)[0], lfull.resize(b[None], SMALL, SMALL)[0]
+    motion = lmotion.fit(a, b, a_s, b_s, lflow.flow(a_s, b_s, method="dis-fine"))
+    assert motion is not None and motion.matches == 0 and np.array_equal(motion.h, np.eye(3))
+    wa, va, wb, vb = motion.moved(a, b, 0.3)
+    assert np.abs(wa - a).max() < 1e-5 and np.abs(wb - b).max() < 1e-5 and va.min() == vb.min() == 1.0
+    # a pair that does move is not taken for a still one
+    rolled = view(a, about_centre(12.0, 1.0))
+    r_s = lfull.resize(rolled[None], SMALL, SMALL)[0]
+    moving = lmotion.fit(a, rolled, a_s, r_s, lflow.flow(a_s, r_s, method="dis-fine"))
+    assert moving is None or moving.matches > 0
