@@ -37,20 +37,18 @@ from .triplets import normalised_coords
 
 # every signal the engine can compute; pair_* come with frames made from bracketing captures (models.pairs)
 SIGNALS = LEGACY_SIGNALS + ("detail", "pair_flow", "pair_span", "pair_off", "pair_gap")
-# what a new model's confidence is fitted on: image_cycle would cost a second decode per request
-# and adds nothing the cycle residual does not already carry (see bench/RESULTS.md). "nearest" is
-# left out because the calibration set cannot show it as it is served: each calibration frame
-# stands where a held-out capture was taken out of the bank, so its nearest bank code is about one
-# spacing away, while a served in-between has the whole bank around it (measured mean 1.04 against
-# 0.51 spacings on the lamp scene, 0.99 against 0.39 on the photo window); fitted on it, the
+# what a new model's confidence is fitted on: image_cycle would cost a second decode per request and adds nothing the
+# cycle residual does not already carry (see bench/RESULTS.md). "nearest" is left out because the calibration set
+# cannot show it as it is served: each calibration frame stands where a held-out capture was taken out of the bank, so
+# its nearest bank code is about one spacing away, while a served in-between has the whole bank around it (measured
+# mean 1.04 against 0.51 spacings on the lamp scene, 0.99 against 0.39 on the photo window); fitted on it, the
 # confidence came out too low on every served frame (bench/RESULTS.md)
 FITTED_SIGNALS = ("cycle", "settings")
 # a refining model adds how little of the frame could be taken from real images (1 - detail share)
 REFINED_SIGNALS = FITTED_SIGNALS + ("detail",)
-# a model that makes frames from the captures that bracket them adds how much of the frame the two
-# captures disagree on (1 - detail), how much of the blend the flows could not follow, how long the
-# bracket is and how far the frame lies off it (sample spacings), and how far the frame lies from
-# the decoded one
+# a model that makes frames from the captures that bracket them adds how much of the frame the two captures disagree
+# on (1 - detail), how much of the blend the flows could not follow, how long the bracket is and how far the frame
+# lies off it (sample spacings), and how far the frame lies from the decoded one
 PAIR_SIGNALS = REFINED_SIGNALS + ("pair_flow", "pair_span", "pair_off", "pair_gap")
 
 
@@ -71,9 +69,8 @@ class ServingConfig:
     tube: float | None = None      # local sample spacings around real samples a geodesic is pulled taut in
     refine: bool | None = None     # detail transfer from the nearest real images, on or off
     refine_threads: int = 2        # threads that refine one answer's frames
-    # frames made from the captures around them may use the held-out captures too: they are real
-    # captures of the subject. Training-time choices and calibration turn this off, so that the
-    # held-out truth is never among the captures a frame is made from
+    # frames made from the captures around them may use the held-out captures too (real captures of the subject);
+    # training-time choices and calibration turn this off, so the held-out truth is never among them
     holdout_captures: bool = True
     flow_cache_mb: int = 64        # flows between capture pairs kept across requests (0: none kept)
 
@@ -279,11 +276,9 @@ class Engine:
             return images, None
         return self.refined(codes, images, place=place, rank=rank)
 
-    def scoring(self, refine: bool = True, route: str = "geodesic"
-                ) -> tuple[tuple[str, ...], ConfidenceModel | None]:
-        """(signal names, confidence model) for frames of `route` (a settings fill: "geodesic")
-        rendered with `refine`: a refining model's decoded frames have their own confidence (None
-        until fitted, or for older bundles), and the straight route's frames their own curve."""
+    def scoring(self, refine: bool = True, route: str = "geodesic") -> tuple[tuple[str, ...], ConfidenceModel | None]:
+        """(signal names, confidence model) for `route`'s frames (fills: "geodesic") rendered with `refine`: a
+        refining model's decoded frames have their own (None for older bundles), the straight route its own curve."""
         chord = route == "straight"
         if refine or self.refine is None:
             return self.signal_names, self.straight_confidence if chord else self.confidence
@@ -379,10 +374,9 @@ class Engine:
 
     def frames_at(self, codes: np.ndarray, t: np.ndarray, intended: np.ndarray, min_confidence: float = 0.5,
                   refine: bool = True, place: np.ndarray | None = None, route: str = "geodesic") -> list[Frame]:
-        """Frames for `codes` (N, d) at route fractions `t`, each meant to show the settings
-        `intended` (N, P): rendered, read by the code-to-settings head, scored (as between does)
-        by the confidence of `route`'s frames. `place`: where a frame made from bracketing captures
-        is made (default: the settings the code shows)."""
+        """Frames for `codes` (N, d) at route fractions `t`, each meant to show the settings `intended`
+        (N, P): rendered, read by the code-to-settings head, scored by the confidence of `route`'s frames
+        (as between does). `place`: where a frame made from captures is made (default: what the code shows)."""
         names, model = self.scoring(refine, route)
         if model is None and self.confidence is not None:
             raise ValueError("refine: this model version has no confidence fitted on frames without "

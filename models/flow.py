@@ -18,7 +18,6 @@ weights for colour, common practice).
 from __future__ import annotations
 
 import functools
-import threading
 
 import cv2
 import numpy as np
@@ -39,8 +38,6 @@ def luma8(img: np.ndarray) -> np.ndarray:
 
 
 METHODS = ("farneback", "dis", "dis-fine")
-_DIS = threading.local()  # one DIS object per thread and kind: an OpenCV DIS object must not be
-# shared between threads (measured: two threads calling one object corrupted the heap)
 # "dis-fine": DIS with 4 px patches every 2 px down to half resolution (the preset: 8 px every 4), for
 # frames made from two captures, where every pixel's motion counts. Measured on the turntable and the
 # camera-move scenes at 64 px (16 frames each between captures 15 deg of yaw or roll apart, or 10 deg
@@ -51,14 +48,16 @@ FINE_DIS = dict(finest_scale=1, patch_size=4, patch_stride=2)
 
 
 def _dis(kind: str = "dis") -> "cv2.DISOpticalFlow":
-    if not hasattr(_DIS, kind):
-        estimator = cv2.DISOpticalFlow_create(cv2.DISOPTICAL_FLOW_PRESET_MEDIUM)
-        if kind == "dis-fine":
-            estimator.setFinestScale(FINE_DIS["finest_scale"])
-            estimator.setPatchSize(FINE_DIS["patch_size"])
-            estimator.setPatchStride(FINE_DIS["patch_stride"])
-        setattr(_DIS, kind, estimator)
-    return getattr(_DIS, kind)
+    """A new DIS estimator per flow: one object reused on pictures of other sizes gave another flow
+    for the same pair afterwards (measured: the error left by the flow of one lamp-tile pair moved by 16%),
+    and one object must not be shared between threads (two threads calling one corrupted the heap).
+    Making one costs about 10 us, 5% of a 64 px flow."""
+    estimator = cv2.DISOpticalFlow_create(cv2.DISOPTICAL_FLOW_PRESET_MEDIUM)
+    if kind == "dis-fine":
+        estimator.setFinestScale(FINE_DIS["finest_scale"])
+        estimator.setPatchSize(FINE_DIS["patch_size"])
+        estimator.setPatchStride(FINE_DIS["patch_stride"])
+    return estimator
 
 
 def flow(a: np.ndarray, b: np.ndarray, settings: dict | None = None, method: str = "farneback") -> np.ndarray:

@@ -110,10 +110,7 @@ class Confidence:
     tau: float                     # SSIM threshold, in (0, 1)
     signals: tuple[str, ...]       # the off-manifold signals it reads, in its column order
     model: Mapping[str, Any]       # ConfidenceModel.to_dict(): combiner and calibrator
-    # the straight route's frames have their own curve (ConfidenceModel.to_dict() on the same
-    # signals): a chord's frame with the same signals is faithful less often than a geodesic's.
-    # None: bundles trained before it, whose one model scores every frame
-    straight: Mapping[str, Any] | None = None
+    straight: Mapping[str, Any] | None = None  # the straight route's own curve (same signals); None: `model`'s
 
     @property
     def method(self) -> str:
@@ -144,10 +141,9 @@ class Confidence:
             raise BundleError(f"{where}.signals: {signals!r:.80} is not a list of signal names")
         model = _obj(_key(d, "model", where, legacy), f"{where}.model")
         straight = None if d.get("straight") is None else _obj(d["straight"], f"{where}.straight")
-        for key, m in (("model", model), ("straight", straight)):
+        for key, m in (("model", model), ("straight", straight or model)):
             try:
-                if m is not None:
-                    ConfidenceModel.from_dict(m)
+                ConfidenceModel.from_dict(m)
             except (LookupError, TypeError, ValueError) as exc:
                 raise BundleError(f"{where}.{key}: {exc}") from None
         return cls(tau=_num(_key(d, "tau", where, legacy), f"{where}.tau", lo=0.0, hi=1.0),
@@ -399,18 +395,14 @@ class Manifest:
             warning = (f"too few held-out frames reached SSIM {tau:g}{reach} to fit a confidence curve: every frame "
                        f"gets {rate:.3f}, so frames are rejected at min_confidence above it; train with a lower "
                        f"--tau to get a confidence you can use")
+        chord = None if conf is None else conf.straight  # the straight route's own curve, if it has one
+        curve = None if chord is None else {"kind": "fitted" if "calibrator" in chord else "bound",
+                                            "method": (chord.get("calibrator") or {}).get("method"),
+                                            **{k: getattr(report.straight, k, None) for k in ("ece", "auroc", "rows")}}
         return {"fitted": kind == "fitted", "kind": kind, "tau": tau, "method": report.method if conf is None
                 else conf.method, "signals": [] if conf is None else list(conf.signals), "ece": report.ece,
                 "auroc": report.auroc, "status": report.status or ("fitted" if conf is not None else "not calibrated"),
-                "ssim_quantiles": dict(report.ssim_quantiles), "warning": warning,
-                "straight": None if conf is None or conf.straight is None else self._straight_curve(conf, report)}
-
-    @staticmethod
-    def _straight_curve(conf: Confidence, report: Calibration) -> dict:
-        fit = report.straight or Calibration(status=None)
-        bound = conf.straight.get("kind") == BoundConfidence.KIND
-        return {"kind": "bound" if bound else "fitted", "method": None if bound else conf.straight["calibrator"]["method"],
-                "ece": fit.ece, "auroc": fit.auroc, "rows": fit.rows}
+                "ssim_quantiles": dict(report.ssim_quantiles), "warning": warning, "straight": curve}
 
     def to_dict(self) -> dict:
         """The JSON object manifest.json holds."""

@@ -31,6 +31,10 @@ REFINE_REQUEST = ("detail transfer on a model that refines (see GET /v1/models/{
                   "decoded frames only, faster and softer, each scored by the model's confidence fitted on "
                   "decoded frames (refused with 422 when the model has none: refine.skippable). No effect on a "
                   "model that does not refine")
+SIZE = ("the frames' size: 'full' (the default: the captures' own size, kept up to the cap set at training; the "
+        "model's own when it kept none), 'working' (the model's resolution), or a long side in pixels from 8 up to "
+        "the captures'. Each frame is judged at the working size; a larger one is made from the two captures around "
+        "it, at their own size, with the judged frame's broad difference from them added, where they agree with it")
 ROUTES = ("geodesic", "straight")
 JOB_STATES = ("queued", "running", "done", "failed", "cancelled")
 RESOLUTIONS = (16, 32, 64, 128, 256)
@@ -38,24 +42,15 @@ MAX_VERSION = 2**31 - 1  # a version number the registry's index can hold (large
 
 _EXAMPLE_PARAMS_A = {"lamp_azimuth": 30.0, "lamp_elevation": 40.0}
 _EXAMPLE_PARAMS_B = {"lamp_azimuth": 120.0, "lamp_elevation": 60.0}
-
-
-class _Request(BaseModel):
-    model_config = ConfigDict(strict=True, extra="forbid", allow_inf_nan=False)
-
-
-SIZE = ("the frames' size: 'full' (the default: the captures' own size, kept up to the cap set at training; "
-        "the model's own when it kept none), 'working' (the model's resolution), or a long side in pixels "
-        "from 8 up to the captures'. Each frame is judged at the working size; a larger one is made from the "
-        "two captures around it, at their own size, with the judged frame's broad difference from them added, "
-        "only where they agree with it (elsewhere it is the judged frame enlarged)")
-
-
 MIN_SIDE, MAX_SIDE = 8, 16384  # a frame's long side in pixels, whatever the model (each model caps it lower)
 _SIZE_ERROR = f"Input should be 'working', 'full' or a long side in pixels, {MIN_SIDE} to {MAX_SIDE}"
 # one error at `size` itself when no member of the union fits, not one per member
 Size = Annotated[Literal["working", "full"] | Annotated[int, Field(ge=MIN_SIDE, le=MAX_SIDE)], GetPydanticSchema(
     lambda source, handler: {**handler(source), "custom_error_type": "invalid", "custom_error_message": _SIZE_ERROR})]
+
+
+class _Request(BaseModel):
+    model_config = ConfigDict(strict=True, extra="forbid", allow_inf_nan=False)
 
 
 class _Output(_Request):
@@ -360,11 +355,10 @@ class ParameterOut(_Out):
     periodic: bool
 
 
-class CurveOut(_Out):
-    kind: Literal["fitted", "bound"] = Field(description="'fitted': a calibrated curve; 'bound': one conservative "
-                                                         "rate for every frame of its kind")
-    method: str | None = Field(description="'platt' or 'isotonic'; null for a bound")
-    ece: float | None = Field(description="expected calibration error (15 bins) on held-out frames of its kind")
+class CurveOut(_Out):  # a curve fitted on one kind of held-out frames, as CalibrationOut's kind and method say
+    kind: Literal["fitted", "bound"]
+    method: str | None
+    ece: float | None
     auroc: float | None
     rows: int | None = Field(description="held-out frames of its kind with a known truth")
 
@@ -385,9 +379,8 @@ class CalibrationOut(_Out):
                                                          "against their truth: which tau this model can reach")
     warning: str | None = Field(None, description="plain words when this model's frames are rejected whatever they "
                                             "look like (no confidence, or one below most min_confidence values)")
-    straight: CurveOut | None = Field(None, description="the straight route's own curve: its frames are scored apart "
-                                      "from the geodesic's and the fills' (the fields above); null: one curve scores "
-                                      "every frame (models trained before it)")
+    straight: CurveOut | None = Field(None, description="the straight route's own curve, which scores its frames; "
+                                      "null: the curve above scores every frame (models trained before it)")
 
 
 class ScoreOut(_Out):

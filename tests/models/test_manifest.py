@@ -131,7 +131,7 @@ def test_an_uncalibrated_bundle_writes_its_sections_as_null(tiny_scene, tmp_path
     summary = manifest.calibration_summary()
     warning = summary.pop("warning")
     assert summary == {"fitted": False, "kind": "none", "tau": None, "method": None, "signals": [], "ece": None,
-                       "auroc": None, "status": "not calibrated", "ssim_quantiles": {}}
+                       "auroc": None, "status": "not calibrated", "ssim_quantiles": {}, "straight": None}
     assert "every frame it serves is rejected" in warning
 
 
