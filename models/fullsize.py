@@ -119,8 +119,8 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
                 flows = lpairs.pair_flows(small[0], small[1], method)
                 engine.flow_cache.put(key, flows)
             motion = global_motion(engine, i, j, flows)
-            if motion is not None:  # one map moves the whole picture: followed at full size
-                wa, va, wb, vb = motion.moved(big(i), big(j), at)
+            if motion is not None:  # one map moves the whole picture: followed at the frame's size
+                wa, va, wb, vb = motion.at_size((full_w, full_h), (width, height)).moved(big(i), big(j), at)
             else:
                 wa, va, wb, vb = lpairs.moved(big(i), big(j), at, _scaled(flows, width, height))
             moved = [(wa, (1.0 - at) * va), (wb, at * vb)]

@@ -63,6 +63,9 @@ def test_a_frame_between_two_shifted_crops_comes_out_at_full_size_as_the_true_cr
     assert got.shape == (FULL, FULL, 3)
     assert ssim(got, truth) >= 0.95, ssim(got, truth)
     assert ssim(got, truth) > ssim(plain, truth) + 0.1  # the detail comes from the captures
+    # at a size between the working and the full one, the frame is the true crop at that size
+    half = lfull.enlarge(engine, served, np.array([[STEP / 2]]), FULL // 2)[0]
+    assert half.shape == (FULL // 2, FULL // 2, 3) and ssim(half, crop(photo, STEP / 2, FULL // 2)) >= 0.95
     # at a capture's own settings the full-size frame is that capture
     at_capture = lfull.enlarge(engine, crop(photo, 0, SMALL)[None], np.array([[0.0]]), FULL)[0]
     assert ssim(at_capture, crop(photo, 0, FULL)) > 0.97
