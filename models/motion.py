@@ -69,6 +69,9 @@ class GlobalMotion:
         out = []
         for img, m in ((a, self.power(s)), (b, self.power(s - 1.0))):
             seen = np.ones((h, w, 1), np.float32)
+            if np.array_equal(m, np.eye(3)):  # a still pair, or a capture at its own place: nothing to move
+                out += [np.asarray(img, np.float32), seen]
+                continue
             both = np.concatenate([np.asarray(img, np.float32), seen], axis=-1)
             # dst(y) = src(m^-1 y): A at H^-s y, B at H^(1-s) y
             moved = cv2.warpPerspective(both, m, (w, h), flags=cv2.INTER_CUBIC, borderMode=cv2.BORDER_CONSTANT)
