@@ -149,9 +149,6 @@ def main() -> None:
     print(json.dumps(measure(args.bundle, args.kind, size=args.size, pairs=args.pairs, out=out), indent=1))
 
 
-if __name__ == "__main__":
-    main()
-
 
 def _random_ends(space, rng, frames: int = 16, **extra) -> dict:
     def one():
@@ -161,26 +158,21 @@ def _random_ends(space, rng, frames: int = 16, **extra) -> dict:
 
 def throughput(bundle: str | Path, *, port: int = 8767, seconds: float = 5.0, clients: int = 4) -> dict:
     """Full-size frames per second: 16-frame answers (settings ends, PNG) from `clients` keep-alive
-    clients through `geotween serve`, against the bare limit in this process (engine, enlargement and
-    PNG encoding, no HTTP), side by side in one run."""
+    clients through `geotween serve`, against the bare limit in this process (the same answer made
+    without HTTP: bench/latency.py's answer_in_process), side by side in one run."""
     import threading
 
     import httpx
-    from latency import serving
+    from latency import answer_in_process, serving
 
-    from geotween.models import fullsize as lfull
-    from geotween.models.engine import Endpoint, Engine
-    from geotween.service.imaging import encode_png
+    from geotween.models.engine import Engine
 
     engine = Engine.load(bundle)
     rng = np.random.default_rng(3)
     bodies = [_random_ends(engine.space, rng) for _ in range(12)]
 
     def bare_once(body):
-        ans = engine.between(Endpoint(params=body["start"]["params"]), Endpoint(params=body["end"]["params"]),
-                             frames=16)
-        for f in lfull.sized(engine, ans.frames, "full"):
-            encode_png(f.image)
+        answer_in_process(engine, body)
 
     for body in bodies[:2]:
         bare_once(body)
@@ -237,3 +229,7 @@ def memory(full_bundle: str | Path, small_bundle: str | Path, answers: int = 10)
         out = subprocess.run([sys.executable, "-c", script, str(path)], capture_output=True, text=True, check=True)
         peak[key] = round(float(out.stdout.strip().splitlines()[-1]), 1)
     return {"peak_rss_mb": peak, "extra_mb": round(peak["full"] - peak["working"], 1)}
+
+
+if __name__ == "__main__":
+    main()
