@@ -33,12 +33,13 @@ def cylinder_floor(scene) -> float:
     import torch
 
     from geotween.models import losses
+    from geotween.models.spacing import balanced_spacing
     from geotween.models.train import TrainConfig, split_holdout
     from geotween.models.triplets import mine_triplets
 
     cfg, space = TrainConfig(), scene.space
     train_idx, _ = split_holdout(len(scene.params), cfg.holdout, cfg.seed)
-    params, scale = scene.params[train_idx], space.spacing(scene.params)
+    params, scale = scene.params[train_idx], balanced_spacing(space, scene.params, scene.images)
     trip = mine_triplets(params, space, scale=scale, span=cfg.triplet_span, tolerance=cfg.triplet_tolerance)
     cols = []
     for j in range(params.shape[1]):

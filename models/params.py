@@ -106,19 +106,26 @@ class ParamSpace:
             d = d / scale
         return np.sqrt(np.sum(d * d, axis=-1))
 
+    def gridlike(self, params: np.ndarray) -> np.ndarray:
+        """(P,) bool: the axes whose samples take few distinct values (at most one in two samples)."""
+        params = np.asarray(params, dtype=np.float64)
+        n = len(params)
+        return np.array([1 < len(np.unique(np.round(params[:, k], 9))) <= max(2, n // 2)
+                         for k in range(params.shape[1])])
+
     def spacing(self, params: np.ndarray) -> np.ndarray:
         """Typical sample spacing per axis, in the axis' units.
 
         On a grid this is the grid step (the median gap between distinct values, the wrap-around
-        gap included on periodic axes); on scattered samples, span / N^(1/P).
+        gap included on periodic axes); on scattered samples, span / N^(1/P) (models.spacing
+        rebalances scattered axes by how fast the images change along each).
         """
         params = np.asarray(params, dtype=np.float64)
         n, n_axes = params.shape
         out = np.empty(n_axes)
-        for k in range(n_axes):
-            values = np.unique(np.round(params[:, k], 9))
-            gridlike = 1 < len(values) <= max(2, n // 2)
-            if gridlike:
+        for k, grid in enumerate(self.gridlike(params)):
+            if grid:
+                values = np.unique(np.round(params[:, k], 9))
                 gaps = np.diff(values)
                 if self.periodic[k]:
                     gaps = np.append(gaps, values[0] + self.span[k] - values[-1])

@@ -24,6 +24,7 @@ from .metrics import psnr_batch, ssim_batch
 from .nets import Autoencoder, ModelConfig
 from .params import ParamSpace
 from .scene import Scene
+from .spacing import balanced_spacing
 from .triplets import Triplets, mine_triplets
 
 
@@ -153,7 +154,7 @@ def train(scene: Scene, model_config: ModelConfig | None = None, train_config: T
 
     train_idx, hold_idx = split_holdout(len(scene.params), cfg.holdout, cfg.seed)
     params = scene.params[train_idx]
-    scale = space.spacing(scene.params)
+    scale = balanced_spacing(space, scene.params, scene.images)
     trip = mine_triplets(params, space, scale=scale, span=cfg.triplet_span, tolerance=cfg.triplet_tolerance)
     x_all = to_tensor(scene.images[train_idx])                           # (N, C, H, W)
     feats = torch.from_numpy(space.features(params).astype(np.float32))  # (N, F)
