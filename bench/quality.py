@@ -45,6 +45,11 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
     train_wall = time.perf_counter() - t0
     engine = Engine.load(out / "bundle")
     report = evaluate(engine, truth_dir, sheet=out / "contact_sheet.png")
+    # scattered samples: the truth set's end images are grid views, none of them a capture, and an end the
+    # model cannot place leaves its frames unjudged; the routes between the pairs' true settings show the
+    # frames made from the captures apart from placing
+    by_settings = (evaluate(engine, truth_dir, sheet_pairs=0, ends="settings")
+                   if scene_kind.endswith("-scattered") else None)
     # timings on the demo bank
     rng = np.random.default_rng(0)
     ends = rng.integers(0, len(engine.bundle.codes), size=(50, 2))
@@ -92,7 +97,7 @@ def measure(resolution: int = 64, *, steps: int | None = None, budget_seconds: f
                "answer16_ratio_to_decoded": {k: round(p50[k] / p50["decoded"], 2) for k in ("cold", "loaded", "warm")},
                "flows_at_load": {"pairs": warmed_pairs, "seconds": round(warm_load_s, 2),
                                  "mb": round(loaded.flow_cache.used / 2 ** 20, 1)},
-               "report": report,
+               "report": report, "report_settings_ends": by_settings,
                "bundle": str(out / "bundle")}
     (out / "quality.json").write_text(json.dumps(summary, indent=1))
     return summary

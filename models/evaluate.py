@@ -81,14 +81,22 @@ def _summary(psnr: np.ndarray, ssim: np.ndarray) -> dict:
             "psnr_p10": round(float(np.percentile(psnr, 10)), 3), "frames": int(len(psnr))}
 
 
+ENDS = ("image", "settings")
+
+
 def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0.5,
-             sheet: str | Path | None = None, sheet_pairs: int = 6, latent_map: str | Path | None = None) -> dict:
+             sheet: str | Path | None = None, sheet_pairs: int = 6, latent_map: str | Path | None = None,
+             ends: str = "image") -> dict:
     """Report dict: per method PSNR (dB), SSIM, p10 PSNR; pacing error (spacing units) and
     confidence ECE / AUROC / accept-reject confusion for the latent routes; "by_span" holds the
     same per span bucket (see `span_report`) and "longest_pair" the pair of greatest reach.
     `sheet` and `latent_map` are PNG paths: the contact sheet and the bank's map with the geodesic
     routes of the same first `sheet_pairs` pairs; beside the map, "<name>_long.png" shows the
-    geodesic route of the longest pair."""
+    geodesic route of the longest pair. `ends`: the routes are asked for between the pairs' end images
+    ("image", the model places them first) or between their true settings ("settings": an end image
+    that is no capture may not be placeable, as on scattered samples)."""
+    if ends not in ENDS:
+        raise ValueError(f"ends: {ends!r} is not one of {list(ENDS)}")
     pairs = load_truth(truth_dir, engine.resolution, engine.channels)
     if not pairs:
         raise ValueError(f"{truth_dir}: the truth set has no pairs")
@@ -112,9 +120,10 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
                 "flow": lflow.tween(pair["start_image"], pair["end_image"], t),
                 "nearest": engine.captures(near),
                 "ceiling": engine.decode(engine.encode(truth))}
+        start, end = ((Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"])) if ends == "image"
+                      else (Endpoint(params=pair["start"]["params"]), Endpoint(params=pair["end"]["params"])))
         for route in ("straight", "geodesic"):
-            ans = engine.between(Endpoint(image=pair["start_image"]), Endpoint(image=pair["end_image"]),
-                                 frames=len(t), route=route, min_confidence=min_confidence)
+            ans = engine.between(start, end, frames=len(t), route=route, min_confidence=min_confidence)
             outs[route] = np.stack([f.image for f in ans.frames])
             shown = np.array([engine.space.vector(f.params) for f in ans.frames])
             pacing[route] += list(engine.space.distance(shown, want, engine.scale))
@@ -129,9 +138,9 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
                 long_answer = ans
             if route == "geodesic" and "geodesic_decoded" in methods:
                 if engine.decoded_confidence is not None:  # the same route, as a refine=False request serves it
-                    ends = np.stack([engine.space.vector(ans.start_params), engine.space.vector(ans.end_params)])
+                    placed = np.stack([engine.space.vector(ans.start_params), engine.space.vector(ans.end_params)])
                     at = np.array([f.t for f in ans.frames])
-                    plain = engine.frames_at(ans.codes, at, engine.space.lerp(ends[0], ends[1], at),
+                    plain = engine.frames_at(ans.codes, at, engine.space.lerp(placed[0], placed[1], at),
                                              min_confidence, refine=False)
                     conf["geodesic_decoded"][0].extend(f.confidence for f in plain)
                     outs["geodesic_decoded"] = np.stack([f.image for f in plain])
@@ -145,7 +154,7 @@ def evaluate(engine: Engine, truth_dir: str | Path, *, min_confidence: float = 0
                 conf[route][1].extend(got[route]["ssim"][-1] >= tau)
         if len(rows) < sheet_pairs:
             rows.append((truth, outs))
-    report: dict = {"pairs": len(pairs), "frames_per_pair": int(len(pairs[0]["t"])), "tau": tau,
+    report: dict = {"pairs": len(pairs), "frames_per_pair": int(len(pairs[0]["t"])), "tau": tau, "ends": ends,
                     "min_confidence": min_confidence, "methods": {}}
     for m in methods:
         report["methods"][m] = _summary(np.concatenate(got[m]["psnr"]), np.concatenate(got[m]["ssim"]))
@@ -254,7 +263,8 @@ def contact_sheet(rows: list, out: str | Path, *, gap: int = 2) -> Path:
 
 
 def format_table(report: dict) -> str:
-    lines = [f"{'method':<16} {'PSNR dB':>8} {'SSIM':>7} {'p10 dB':>7} {'pacing':>7} {'ECE':>6} {'AUROC':>6}"]
+    lines = ["routes asked between the pairs' true settings"] if report.get("ends") == "settings" else []
+    lines += [f"{'method':<16} {'PSNR dB':>8} {'SSIM':>7} {'p10 dB':>7} {'pacing':>7} {'ECE':>6} {'AUROC':>6}"]
     for m in report["methods"]:
         r = report["methods"][m]
         c = r.get("confidence", {})

@@ -216,7 +216,7 @@ def cmd_eval(args) -> int:
     out = Path(args.out or f"eval-{entry.name}-{entry.version}")
     out.mkdir(parents=True, exist_ok=True)
     report = evaluate(engine, args.truth, min_confidence=args.min_confidence, sheet=out / "contact_sheet.png",
-                      latent_map=out / LATENT_MAP)
+                      latent_map=out / LATENT_MAP, ends=args.ends)
     report.update({"model": entry.name, "version": entry.version})
     (out / "report.json").write_text(json.dumps(report, indent=1))
     print(format_table(report))
@@ -329,6 +329,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("truth", help="truth folder (truth.json + PNGs), as render-demo writes")
     s.add_argument("--out", default=None, help="folder for report.json and contact_sheet.png")
     s.add_argument("--min-confidence", type=float, default=0.5)
+    s.add_argument("--ends", choices=("image", "settings"), default="image",
+                   help="ask for routes between the pairs' end images (placed by the model) or their true settings")
     s.add_argument("--version", type=int, default=None)
     s.set_defaults(func=cmd_eval)
 

@@ -192,3 +192,23 @@ def test_the_longest_pair_gets_its_own_latent_map_and_the_table_shows_every_buck
     # the overall table keeps its shape: one row per method, before the span section
     head = table.split("\n\n")[0].splitlines()
     assert [line.split()[0] for line in head[1:]] == list(report["methods"])
+
+
+def test_settings_ends_ask_for_routes_between_the_true_settings(span_eval, small_engine, monkeypatch):
+    pairs, _, truth = span_eval
+    asked = []
+    real = small_engine.between
+
+    def spy(start, end, **kw):
+        asked.append((start, end))
+        return real(start, end, **kw)
+
+    monkeypatch.setattr(small_engine, "between", spy)
+    report = evaluate(small_engine, truth, sheet_pairs=0, ends="settings")
+    assert report["ends"] == "settings" and format_table(report).startswith("routes asked between the pairs' true")
+    first = load_truth(truth, small_engine.resolution, small_engine.channels)[0]
+    start, end = asked[0]
+    assert start.image is None and start.params == first["start"]["params"] and end.params == first["end"]["params"]
+    assert len(asked) == 2 * len(pairs)  # both routes of every pair
+    with pytest.raises(ValueError, match="ends"):
+        evaluate(small_engine, truth, ends="codes")
