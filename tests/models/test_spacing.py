@@ -7,7 +7,7 @@ import pytest
 from scipy import ndimage
 from skimage import data as skdata
 
-from geotween.models.params import ParamSpace, Parameter
+from geotween.models.params import Parameter, ParamSpace
 from geotween.models.refine import blur
 from geotween.models.spacing import BLUR, STRETCH, balanced_spacing
 
