@@ -1,7 +1,7 @@
 """Frames at the captures' own size. The model works small: it decides where a frame lies, makes it at
 its working size and judges it there. The pixels of the large frame come from the real captures
-around it, at their own size. Each of the two captures that bracket the frame, moved to the
-frame's place, gives (moved along one map fitted at full size where one map moves the whole
+around it, at their own size. Each of the two (or three) captures that bracket the frame, moved to
+the frame's place, gives (a pair moved along one map fitted at full size where one map moves the whole
 picture, models.motion; else along the dense flows estimated at the working size and scaled up,
 models.pairs)
 
@@ -91,7 +91,6 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
     width, height = frame_size(long, w, (full_w, full_h))
     u = (engine.space.wrap(np.asarray(places, dtype=np.float64)) - engine.space.lo) / engine.scale
     bracket = engine.bracketer(u)
-    single = (bracket.first == bracket.second) | (bracket.at <= 1e-6) | (bracket.at >= 1 - 1e-6)
     # the pair flows of a model that makes frames from pairs (shared with its cache), else DIS
     method = engine.refine.flow if engine.refine is not None and engine.refine.mode == "pair" else "dis"
     # captures are read and resized as frames need them, a few at a time (consecutive frames share
@@ -106,24 +105,34 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
         held.move_to_end(k)
         return held[k]
 
+    def pair(i: int, j: int) -> lpairs.PairFlows:
+        key = (method, i, j)
+        flows = engine.flow_cache.get(key)
+        if flows is None:
+            small = engine.captures(np.array([i, j]))
+            flows = lpairs.pair_flows(small[0], small[1], method)
+            engine.flow_cache.put(key, flows)
+        return flows
+
     out = np.empty((n, height, width, c), dtype=np.float32)
     for f in range(n):
-        i, j, at = int(bracket.first[f]), int(bracket.second[f]), float(bracket.at[f])
-        if single[f]:
-            moved = [(big(j if at >= 0.5 else i), 1.0)]
-        else:
-            key = (method, i, j)
-            flows = engine.flow_cache.get(key)
-            if flows is None:
-                small = engine.captures(np.array([i, j]))
-                flows = lpairs.pair_flows(small[0], small[1], method)
-                engine.flow_cache.put(key, flows)
+        m, weights = [int(x) for x in bracket.members[f]], bracket.weights[f]
+        if bracket.single[f]:
+            moved = [(big(m[0]), 1.0)]
+        elif not bracket.triangle[f]:
+            i, j, at = m[0], m[1], float(weights[1])
+            flows = pair(i, j)
             motion = global_motion(engine, i, j, flows)
             if motion is not None:  # one map moves the whole picture: followed at the frame's size
                 wa, va, wb, vb = motion.at_size((full_w, full_h), (width, height)).moved(big(i), big(j), at)
             else:
-                wa, va, wb, vb = lpairs.moved(big(i), big(j), at, _scaled(flows, width, height))
+                wa, va, wb, vb = lpairs.moved_pair(big(i), big(j), at, _scaled(flows, width, height))
             moved = [(wa, (1.0 - at) * va), (wb, at * vb)]
+        else:  # three captures around the frame: along the dense flows of the triangle's sides, scaled up
+            sides = {(x, y): _scaled(pair(m[x], m[y]), width, height) for x, y in ((0, 1), (0, 2), (1, 2))}
+            warped, seen = lpairs.moved([big(x) for x in m], weights,
+                                        lambda x, y: lpairs.pair_sides(sides[min(x, y), max(x, y)], 0 if x < y else 1))
+            moved = [(warped[x], weights[x] * seen[x]) for x in range(3)]
         # each moved capture with the served frame's broad difference, where it agrees with it:
         # large = up(F) + sum_k share_k * agree_k * (C_k - up(F)) / sum_k share_k
         base = resize(frames[f][None], width, height)[0]

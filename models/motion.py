@@ -64,7 +64,7 @@ class GlobalMotion:
 
     def moved(self, a: np.ndarray, b: np.ndarray, s: float) -> tuple[np.ndarray, ...]:
         """Full-size captures a and b moved to the place at fraction s, with where each is seen
-        there (1 inside its picture, 0 outside): (W_A, v_A, W_B, v_B) as models.pairs.moved gives."""
+        there (1 inside its picture, 0 outside): (W_A, v_A, W_B, v_B) as models.pairs.moved_pair gives."""
         h, w = a.shape[:2]
         out = []
         for img, m in ((a, self.power(s)), (b, self.power(s - 1.0))):

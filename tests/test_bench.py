@@ -41,10 +41,14 @@ def test_quick_run_measures_every_stage(tmp_path):
     assert "Notes." in text and "--quick" in text
     for heading in ("Quality at 16 px", "Quality at 32 px", "Colour relief tile at 16 px", "Photo window at 16 px",
                     "Turntable at 16 px", "Camera move at 16 px", "Turntable from scattered settings at 16 px",
+                    "Camera move from scattered settings at 16 px",
                     "Latency and throughput", "Route search", "Service memory", "Fill throughput as jobs",
                     "Frames at full size", "Full-size throughput", "with the full-size captures"):
         assert heading in text, heading
-    tables = 7  # demo at two sizes, colour tile, photo window, turntable, camera move, scattered turntable
+    # demo at two sizes, colour tile, photo window, turntable, camera move, scattered turntable and camera
+    # move, and the two scattered scenes again with routes between the truth pairs' true settings
+    tables = 8 + 2
+    assert text.count("routes asked between their true settings") == 2
     # every method row of the quality tables carries numbers
     for method in ("dissolve", "flow", "nearest", "straight", "geodesic", "ceiling"):
         # (mean SSIM may be below 0 for a 20-step model's frames: SSIM lies in [-1, 1])

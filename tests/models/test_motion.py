@@ -90,7 +90,7 @@ def test_the_frame_halfway_is_the_view_halfway(photo):
 
     a_s, b_s = lfull.resize(a[None], SMALL, SMALL)[0], lfull.resize(b[None], SMALL, SMALL)[0]
     flows = lfull._scaled(lpairs.pair_flows(a_s, b_s, "dis-fine"), SIDE, SIDE)
-    by_flow = lpairs.moved(a, b, 0.5, flows)[0]
+    by_flow = lpairs.moved_pair(a, b, 0.5, flows)[0]
     assert ssim(inner(wa), inner(truth)) > ssim(inner(by_flow), inner(truth)) + 0.05
 
 

@@ -83,12 +83,12 @@ def test_worse_ranks_give_other_brackets_that_cost_more():
     u, box = grid_bank()
     br = lpairs.Bracketer(u, box)
     p = [[2.4, 1.7]]
-    seen = []
+    seen, costs = [], []
     for rank in range(3):
         b = br(p, rank)
-        seen.append((int(b.first[0]), int(b.second[0])))
-        assert b.off[0] + lpairs.LENGTH_COST * b.length[0] >= 0.0
-    assert len(set(seen)) == 3
+        seen.append((tuple(b.members[0]), tuple(np.round(b.weights[0], 9))))
+        costs.append(b.off[0] + lpairs.LENGTH_COST * b.length[0])
+    assert len(set(seen)) == 3 and costs == sorted(costs)
 
 
 # -- flow warping of known motions --------------------------------------------------------------
@@ -148,7 +148,8 @@ def test_synthesize_estimates_each_pair_once_and_uses_captures_whole_at_their_se
         calls.append(tuple(np.ravel(idx)))
         return caps[np.asarray(idx)]
 
-    br = lpairs.Bracket(first=np.array([0, 0, 1, 2]), second=np.array([1, 1, 2, 2]), at=np.array([0.25, 0.5, 0.5, 0.0]),
+    br = lpairs.Bracket(members=np.array([[0, 1, 1], [0, 1, 1], [1, 2, 2], [2, 2, 2]]),
+                        weights=np.array([[0.75, 0.25, 0], [0.5, 0.5, 0], [0.5, 0.5, 0], [1.0, 0, 0]]),
                         length=np.array([1.0, 1.0, 1.0, 0.0]), off=np.zeros(4))
     out, fig = lpairs.synthesize(captures, br, caps[[0, 0, 1, 2]], tolerance=0.05)
     assert len(calls) == 1 and sorted(calls[0]) == [0, 1, 2]  # one read of the captures used
@@ -197,3 +198,53 @@ def test_warming_fills_the_flow_cache_in_order_and_never_pushes_a_flow_out(coffe
     stop = __import__("threading").Event()
     stop.set()
     assert lpairs.warm(lpairs.FlowCache(), lambda idx: caps[np.asarray(idx)], pairs, "dis", stop) == 0
+
+
+# -- triangles of captures ---------------------------------------------------------------------
+def test_a_point_inside_scattered_captures_gets_the_triangle_around_it():
+    # three captures, none of their sides through the point: the triangle's barycentric weights give the
+    # point back exactly (the definition of barycentric coordinates)
+    u = np.array([[0.0, 0.0], [1.0, 0.1], [0.2, 1.0], [3.0, 3.0], [-2.0, 2.5]])
+    box = np.array([100.0, 100.0])
+    p = np.array([[0.4, 0.35]])
+    b = lpairs.Bracketer(u + 10.0, box)(p + 10.0)
+    assert b.triangle[0] and set(b.members[0].tolist()) == {0, 1, 2} and b.off[0] == pytest.approx(0.0, abs=1e-9)
+    assert np.allclose(b.weights[0] @ u[b.members[0]], p[0]) and b.weights[0].sum() == pytest.approx(1.0)
+    assert list(b.members[0]) == sorted(b.members[0])
+    assert b.length[0] == pytest.approx(np.linalg.norm(u[1] - u[2]))  # the longest side
+    # pairs only: the best pair misses the point
+    assert lpairs.Bracketer(u + 10.0, box, triangles=False)(p + 10.0).off[0] > 0.1
+
+
+def test_no_triangles_along_one_setting_or_from_collinear_captures():
+    line = np.array([[0.0], [1.0], [2.0], [3.0]])
+    b = lpairs.Bracketer(line, np.array([100.0]))([[1.5]])
+    assert not b.triangle[0] and b.weights[0, 1] == pytest.approx(0.5)
+    row = np.array([[0.0, 0.0], [1.0, 0.0], [2.0, 0.0], [3.0, 0.0]])
+    b = lpairs.Bracketer(row, np.array([100.0, 100.0]))([[1.5, 0.0], [1.5, 0.2]])
+    assert not b.triangle.any()
+
+
+def shifted(photo, dx, dy):
+    # a 64 px window of the photograph moved by (dx, dy) px with scipy.ndimage's cubic-spline shift
+    big = photo[80:240, 120:280].astype(np.float64) / 255.0
+    moved = np.stack([ndimage.shift(big[..., c], (-dy, -dx), order=3, mode="nearest") for c in range(3)], -1)
+    return np.clip(moved[48:112, 48:112], 0, 1).astype(np.float32)
+
+
+def test_a_frame_inside_a_triangle_of_shifted_photographs_is_the_true_view(coffee):
+    # captures moved 6 px right and 6 px down from the first; the frame a third of the way to each
+    caps = np.stack([shifted(coffee, 0, 0), shifted(coffee, 6, 0), shifted(coffee, 0, 6)])
+    truth = shifted(coffee, 2, 2)
+    decoded = blur(truth[None], 2.0)[0]  # what a small decoder gives: the right picture, blurred
+    tri = lpairs.Bracket(members=np.array([[0, 1, 2]]), weights=np.array([[1 / 3, 1 / 3, 1 / 3]]),
+                         length=np.array([1.4]), off=np.zeros(1))
+    out, fig = lpairs.synthesize(lambda idx: caps[np.asarray(idx)], tri, decoded[None], tolerance=0.05)
+    inner = (slice(4, -4), slice(4, -4))
+    assert ssim(out[0][inner], truth[inner]) >= 0.95
+    # the best a pair can do: the side from the second to the third capture passes (3, 3), 1.4 px off
+    pair = lpairs.Bracket(members=np.array([[1, 2, 2]]), weights=np.array([[0.5, 0.5, 0.0]]),
+                          length=np.array([1.4]), off=np.array([0.24]))
+    by_pair, _ = lpairs.synthesize(lambda idx: caps[np.asarray(idx)], pair, decoded[None], tolerance=0.05)
+    assert ssim(out[0][inner], truth[inner]) > ssim(by_pair[0][inner], truth[inner]) + 0.02
+    assert 0.8 <= fig["detail"][0] <= 1.0 and fig["flow_error"][0] < 0.2
