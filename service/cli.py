@@ -77,13 +77,13 @@ UNPLACED = ("geotween: warning: an image end could not be placed among the captu
 
 def refine_line(manifest) -> str:
     """Whether a model refines its frames from real training images (detail transfer, or frames made
-    from the two captures around each), and the held-out
+    from the captures around each), and the held-out
     in-betweens behind that choice (decoded -> refined), from its bundle manifest (a Manifest)."""
     chosen = manifest.refine
     if not chosen.chosen:
         return "detail transfer off (no choice made at training time)"
     pair = chosen.on and chosen.config.mode == "pair"
-    text = ("frames from the two captures around each" if pair else "detail transfer") + (" on" if chosen.on else " off")
+    text = ("frames from the captures around each" if pair else "detail transfer") + (" on" if chosen.on else " off")
     if chosen.on:
         text += f" (flow {chosen.config.flow})"
     if chosen.holdout is not None:

@@ -33,7 +33,7 @@ REFINE_REQUEST = ("detail transfer on a model that refines (see GET /v1/models/{
                   "model that does not refine")
 SIZE = ("the frames' size: 'full' (the default: the captures' own size, kept up to the cap set at training; the "
         "model's own when it kept none), 'working' (the model's resolution), or a long side in pixels from 8 up to "
-        "the captures'. Each frame is judged at the working size; a larger one is made from the two captures around "
+        "the captures'. Each frame is judged at the working size; a larger one is made from the captures around "
         "it, at their own size, with the judged frame's broad difference from them added, where they agree with it")
 ROUTES = ("geodesic", "straight")
 JOB_STATES = ("queued", "running", "done", "failed", "cancelled")
@@ -413,7 +413,7 @@ class RefineOut(_Out):
                                             "flow: how images are moved onto the frame, 'dis' or 'farneback' "
                                             "optical flow, or 'none' where camera and subject stand still; "
                                             "mode: absent or 'detail' for detail transfer onto the decoded frame, "
-                                            "'pair' for frames made from the two captures around each, warped "
+                                            "'pair' for frames made from the two (or three) captures around each, warped "
                                             "to it along the flow between them and blended, the decoded frame "
                                             "choosing where they disagree)")
     holdout: RefineHoldoutOut | None = Field(description="held-out figures behind the choice; null when there "

@@ -74,7 +74,7 @@ function confidenceKind(c) {
 function refineText(r) {
   if (!r || !r.chosen) return "off (not chosen at training)";
   let text = r.on ? "on" : "off";
-  if (r.on && r.config && r.config.mode === "pair") text = "on, frames made from the two captures around each";
+  if (r.on && r.config && r.config.mode === "pair") text = "on, frames made from the captures around each";
   const h = r.holdout;
   if (h) {
     text += "; held-out PSNR " + fmt(h.decoded.psnr, 2) + " dB decoded, " + fmt(h.refined.psnr, 2) + " dB refined";

@@ -236,7 +236,7 @@ def test_models_says_whether_each_model_refines(detail_registry, capsys):
         dec, ref = entries[name]["holdout"]["decoded"], entries[name]["holdout"]["refined"]
         flow = f" (flow {entries[name]['config']['flow']})" if state == "on" else ""
         pair = state == "on" and entries[name]["config"].get("mode") == "pair"
-        what = "frames from the two captures around each" if pair else "detail transfer"
+        what = "frames from the captures around each" if pair else "detail transfer"
         assert said[name].startswith(f"{what} {state}{flow}; "), said[name]
         assert f"PSNR {dec['psnr']:.2f} -> {ref['psnr']:.2f} dB" in said[name]
         assert f"SSIM {dec['ssim']:.4f} -> {ref['ssim']:.4f}" in said[name]
