@@ -46,9 +46,8 @@ SIGNALS = LEGACY_SIGNALS + ("detail", "pair_flow", "pair_span", "pair_off", "pai
 FITTED_SIGNALS = ("cycle", "settings")
 # a refining model adds how little of the frame could be taken from real images (1 - detail share)
 REFINED_SIGNALS = FITTED_SIGNALS + ("detail",)
-# a model that makes frames from the captures that bracket them adds how much of the frame the two captures disagree
-# on (1 - detail), how much of the blend the flows could not follow, how long the bracket is and how far the frame
-# lies off it (sample spacings), and how far the frame lies from the decoded one
+# frames made from bracketing captures add where they disagree (1 - detail), how much of the blend the flows could
+# not follow, the bracket's size and the frame's distance off it (spacings), and the frame's gap to the decoded one
 PAIR_SIGNALS = REFINED_SIGNALS + ("pair_flow", "pair_span", "pair_off", "pair_gap")
 
 
@@ -104,7 +103,7 @@ class Frame:
     index: int                 # 1-based
     t: float                   # fraction of the route's length
     image: np.ndarray          # (H, W, C) float32 in [0, 1]
-    params: dict[str, float]   # the settings the frame shows (code-to-settings head)
+    params: dict[str, float]   # the settings the frame shows: where it was made from captures, else its code's
     confidence: float | None   # calibrated probability that SSIM against the true view >= tau (None: unjudged, never accepted)
     accepted: bool
     signals: dict[str, float] = field(default_factory=dict)
@@ -386,10 +385,11 @@ class Engine:
         images, figures = self.render(codes, refine, place)
         sig = self.signals(codes, images, intended, shown, figures, names=names)
         conf = None if model is None else model.predict(sig)
+        made = place if figures is not None and "pair_span" in figures else shown  # made from captures there
         frames = []
         for i in range(len(codes)):
             c = None if conf is None else float(conf[i])
-            frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(shown[i]),
+            frames.append(Frame(index=i + 1, t=float(t[i]), image=images[i], params=self.space.named(made[i]),
                                 confidence=c, accepted=c is not None and c >= min_confidence,
                                 signals=dict(zip(names, map(float, sig[i]))),
                                 detail=None if figures is None else float(figures["detail"][i]), place=place[i]))

@@ -27,15 +27,15 @@ FILE_PATTERN = r"^(frame|target)_[0-9]{4,}\.(png|jpg)$"  # between frames, fill 
 FILE = ("name of the frame's file beside the manifest: frame_0001.png for between frames, target_0001.png for "
         "fill frames (the 1-based index, four digits at least; .jpg for JPEG); null when it was not written (the "
         "command line writes rejected frames only with --keep-rejected, fill never)")
-REFINE_REQUEST = ("detail transfer on a model that refines (see GET /v1/models/{name}, refine.on). false: the "
-                  "decoded frames only, faster and softer, each scored by the model's confidence fitted on "
-                  "decoded frames (refused with 422 when the model has none: refine.skippable). No effect on a "
-                  "model that does not refine")
+REFINE_REQUEST = ("detail transfer on a model that refines (see GET /v1/models/{name}, refine.on). false: the decoded "
+                  "frames only, faster and softer, each scored by the model's confidence fitted on decoded frames "
+                  "(refused with 422 when the model has none: refine.skippable). No effect on a model that does not refine")
 SIZE = ("the frames' size: 'full' (the default: the captures' own size, kept up to the cap set at training; the "
         "model's own when it kept none), 'working' (the model's resolution), or a long side in pixels from 8 up to "
         "the captures'. Each frame is judged at the working size; a larger one is made from the captures around "
         "it, at their own size, with the judged frame's broad difference from them added, where they agree with it")
 ROUTES = ("geodesic", "straight")
+FRAME_PARAMS = "the settings the frame shows: where it was made if made from the captures around it, else its code's"
 JOB_STATES = ("queued", "running", "done", "failed", "cancelled")
 RESOLUTIONS = (16, 32, 64, 128, 256)
 MAX_VERSION = 2**31 - 1  # a version number the registry's index can hold (larger ones are refused with 422, not 500)
@@ -138,7 +138,7 @@ class _BetweenFrame(_Out):
     t: float = Field(ge=0.0, le=1.0, description="fraction of the route's length, i / (frames + 1)")
     confidence: float | None = Field(ge=0.0, le=1.0, description=CONFIDENCE)
     accepted: bool
-    params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
+    params: dict[str, float] = Field(description=FRAME_PARAMS)
     code: list[float] | None = Field(None, description="the frame's latent code (place it on the latent map "
                                                        "with POST /v1/models/{name}/map)")
     detail: float | None = Field(ge=0.0, le=1.0, description=DETAIL)
@@ -210,7 +210,7 @@ class _FillFrame(_Out):
     target: dict[str, float] = Field(description="the settings asked for")
     confidence: float | None = Field(ge=0.0, le=1.0, description=CONFIDENCE)
     accepted: bool
-    params: dict[str, float] = Field(description="the settings the frame shows, read by the model")
+    params: dict[str, float] = Field(description=FRAME_PARAMS)
     detail: float | None = Field(ge=0.0, le=1.0, description=DETAIL)
 
 

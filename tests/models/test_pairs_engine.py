@@ -102,3 +102,19 @@ def test_flows_estimated_at_load_serve_the_first_answers(turntable_bundle):
     codes = engine.code_of_settings(between_captures(engine, seed=1))
     engine.refined(codes, engine.decode(codes), PAIR)
     assert len(engine.flow_cache) == added  # every pair those frames needed was already there
+
+
+def test_a_frame_made_from_captures_reports_where_it_was_made(turntable_bundle):
+    # the frames of a settings fill are made from the captures at the asked settings: they say so, whatever
+    # the small code-to-settings head reads from their codes; decoded frames report that read
+    place = between_captures(Engine.load(turntable_bundle), count=6, seed=1)
+    targets = [TURNTABLE_SPACE.named(p) for p in place]
+    made = Engine.load(turntable_bundle)
+    made.refine = PAIR
+    for frame, p in zip(made.fill(targets), place):
+        assert np.allclose(TURNTABLE_SPACE.vector(frame.params), p)
+    decoded = Engine.load(turntable_bundle, ServingConfig(refine=False))
+    read = decoded.settings_of(decoded.code_of_settings(place))
+    for frame, p in zip(decoded.fill(targets), read):
+        assert np.allclose(TURNTABLE_SPACE.vector(frame.params), p)
+    assert not np.allclose(read, place, atol=1e-3)  # the head's read is not the asked settings
