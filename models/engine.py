@@ -217,8 +217,7 @@ class Engine:
             bracket = self.bracketer(u, rank)
             out, fig = lpairs.synthesize(self.captures, bracket, images, tolerance=cfg.tolerance, method=cfg.flow,
                                          pool=self._refine_pool, cache=self.flow_cache)
-            return out, {"detail": fig["detail"], "pair_flow": fig["flow_error"], "pair_span": bracket.length,
-                         "pair_off": bracket.off, "pair_gap": fig["decoded_gap"]}
+            return out, lpairs.signal_figures(fig, bracket)
         k = min(cfg.neighbours, len(self.bundle.codes))
         _, idx = self.graph.tree.query(self.graph.warp(codes), k=k)
         refs = self.captures(np.asarray(idx).reshape(len(codes), k))

@@ -348,6 +348,12 @@ def combine(warped: np.ndarray, seen: np.ndarray, weights: np.ndarray, decoded: 
             {"detail": agree.mean(axis=(1, 2, 3)).astype(np.float64), "flow_error": lost.astype(np.float64)})
 
 
+def signal_figures(figures: dict[str, np.ndarray], bracket: Bracket) -> dict[str, np.ndarray]:
+    """`synthesize`'s per-frame figures under the names the confidence signals read them by."""
+    return {"detail": figures["detail"], "pair_flow": figures["flow_error"], "pair_span": bracket.length,
+            "pair_off": bracket.off, "pair_gap": figures["decoded_gap"]}
+
+
 def pair_sides(flows: PairFlows, x: int):
     """`moved`'s flows(x, y) for the two members of one pair: member 0 is the pair's A."""
     return (flows.ab, flows.ba, flows.seen_a) if x == 0 else (flows.ba, flows.ab, flows.seen_b)
