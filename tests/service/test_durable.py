@@ -27,6 +27,7 @@ from geotween.service.settings import Settings
 ROOT = Path(__file__).resolve().parents[2]
 KEY = "durable-key-0123456789abcdef"
 KILLS = 20
+MIN_KILLS = 8  # kills that must have fallen mid-fill, however fast the machine takes its steps
 
 
 def P(az, el):
@@ -92,8 +93,10 @@ def test_kill_9_of_a_worker_in_the_middle_of_a_fill_loses_and_doubles_nothing(re
     seen = []
     try:
         for _ in range(KILLS):
-            proc = _worker(registry, log)
             before = store.get(job_id)["progress"]["done"]
+            if before >= 0.75 * len(targets):  # a fast machine: leave the last quarter to the final worker
+                break
+            proc = _worker(registry, log)
             # killed at a random moment once it is taking steps (start-up alone would prove nothing)
             wait_for(lambda: store.get(job_id)["progress"]["done"] > before or proc.poll() is not None, 60.0,
                      step=0.01)
@@ -112,7 +115,7 @@ def test_kill_9_of_a_worker_in_the_middle_of_a_fill_loses_and_doubles_nothing(re
         if proc.poll() is None:
             _kill(proc)
         store.close()
-    assert len(seen) == KILLS and seen[-1][1] < len(targets), seen  # every kill fell mid-fill
+    assert len(seen) >= MIN_KILLS and all(after < len(targets) for _, after in seen), seen  # every kill mid-fill
     assert [f.fields["index"] for f in frames] == list(range(1, len(targets) + 1))  # each once, in order
     # identical to an uninterrupted run: the synchronous route, chunk by chunk
     with TestClient(create_app(_settings(registry, run_jobs=False))) as c:
