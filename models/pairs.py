@@ -301,9 +301,9 @@ def moved(images: list[np.ndarray], weights: np.ndarray, flows) -> tuple[np.ndar
     out = np.zeros((len(images),) + images[0].shape, np.float32)  # weightless members stay 0: unused
     seen = np.zeros((len(images),) + images[0].shape[:-1] + (1,), np.float32)
     for x, img in enumerate(images):
-        others = [y for y in range(len(images)) if y != x and w[y] > 0]
         if w[x] <= 0:
             continue
+        others = [y for y in range(len(images)) if y != x and w[y] > 0]
         if not others:
             out[x], seen[x] = img, 1.0
             continue
@@ -407,27 +407,18 @@ def synthesize(captures, bracket: Bracket, decoded: np.ndarray, *, tolerance: fl
                 cache.put((method,) + key, got)
         return key, got
 
-    def run(fn, items):
-        return list(pool.map(fn, items) if pool is not None and len(items) > 1 else map(fn, items))
-
-    found = dict(run(estimate, keys))
+    found = dict(pool.map(estimate, keys) if pool is not None and len(keys) > 1 else map(estimate, keys))
+    m = int((weights > 0).sum(axis=1).max())  # members any frame uses: pairs alone need two, singles one
 
     def made(f: int):
-        m = members[f]
-        if single[f]:  # the capture itself: nothing to move, every pixel seen
-            img = images[int(m[0])]
-            return np.stack([img] * 3), np.ones((3,) + img.shape[:-1] + (1,), np.float32)
-
         def sides(x: int, y: int):
-            flows = found[(int(m[min(x, y)]), int(m[max(x, y)]))]
+            flows = found[(int(members[f, min(x, y)]), int(members[f, max(x, y)]))]
             return pair_sides(flows, 0 if x < y else 1)
 
-        return moved([images[int(i)] for i in m], weights[f], sides)
+        return moved([images[int(i)] for i in members[f, :m]], weights[f, :m], sides)  # a single: itself, seen
 
     warped, seen = (np.stack(x) for x in zip(*map(made, range(n))))
-    weights = np.where(single[:, None], [1.0, 0.0, 0.0], weights)
-    m = int(max(1, (weights > 0).sum(axis=1).max()))  # members any frame uses: pairs alone need two
-    out, figures = combine(warped[:, :m], seen[:, :m], weights[:, :m], decoded, tolerance)
+    out, figures = combine(warped, seen, weights[:, :m], decoded, tolerance)
     out[single] = warped[single, 0]  # exactly the capture, not a blend of it with itself
     gap = np.abs(blur(out, SPREAD) - blur(decoded, SPREAD)).mean(axis=(1, 2, 3))
     return out, {**figures, "decoded_gap": gap.astype(np.float64)}
