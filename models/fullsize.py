@@ -33,7 +33,7 @@ AGREE = 0.2    # mean absolute difference (0-1 scale) at working size at which a
 # Measured on frames between captures (bench/RESULTS.md): with no blur and AGREE 0.1 the lamp tile
 # at 256 px lost to its nearest capture (0.940 against 0.972); with these it wins (0.975)
 SIGMA = 1.5
-HELD = 4  # full-size captures an enlargement keeps at hand as floats
+HELD = 4  # full-size captures, and pairs' flows scaled to the frame's size, an enlargement keeps at hand of each
 
 
 def long_side(size: str | int, working: int, full: tuple[int, int] | None) -> int:
@@ -80,6 +80,16 @@ def _scaled(flows: lpairs.PairFlows, width: int, height: int) -> lpairs.PairFlow
     return lpairs.PairFlows(up(flows.ab, gain), up(flows.ba, gain), up(flows.seen_a), up(flows.seen_b))
 
 
+def _kept(store: OrderedDict, key, make):
+    """store[key], made if missing; the least recently used dropped past HELD entries."""
+    if key not in store:
+        store[key] = make()
+        if len(store) > HELD:
+            store.popitem(last=False)
+    store.move_to_end(key)
+    return store[key]
+
+
 def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.ndarray:
     """The (N, h, w, C) working-size frames `frames`, made at settings `places` (N, P), at a long
     side of `long` pixels (the captures' aspect), as the module docstring says."""
@@ -95,15 +105,10 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
     method = engine.refine.flow if engine.refine is not None and engine.refine.mode == "pair" else "dis"
     # captures are read and resized as frames need them, a few at a time (consecutive frames share
     # them): a 16-frame answer at 512 px would otherwise hold 32 of them as floats at once
-    held: OrderedDict[int, np.ndarray] = OrderedDict()
+    held, scaled = OrderedDict(), OrderedDict()  # captures by index, flows at the frame's size by pair
 
     def big(k: int) -> np.ndarray:
-        if k not in held:
-            held[k] = resize(engine.captures(np.array([k]), full=True), width, height)[0]
-            if len(held) > HELD:
-                held.popitem(last=False)
-        held.move_to_end(k)
-        return held[k]
+        return _kept(held, k, lambda: resize(engine.captures(np.array([k]), full=True), width, height)[0])
 
     def pair(i: int, j: int) -> lpairs.PairFlows:
         key = (method, i, j)
@@ -114,25 +119,24 @@ def enlarge(engine, frames: np.ndarray, places: np.ndarray, long: int) -> np.nda
             engine.flow_cache.put(key, flows)
         return flows
 
+    def side(x: int, y: int, m: list[int]):  # `moved`'s flows between members x and y, at the frame's size
+        i, j = m[min(x, y)], m[max(x, y)]
+        return lpairs.pair_sides(_kept(scaled, (i, j), lambda: _scaled(pair(i, j), width, height)), 0 if x < y else 1)
+
     out = np.empty((n, height, width, c), dtype=np.float32)
     for f in range(n):
         m, weights = [int(x) for x in bracket.members[f]], bracket.weights[f]
-        if bracket.single[f]:
+        count = int((weights > 0).sum())
+        motion = global_motion(engine, m[0], m[1], pair(m[0], m[1])) if count == 2 else None
+        if count == 1:
             moved = [(big(m[0]), 1.0)]
-        elif not bracket.triangle[f]:
-            i, j, at = m[0], m[1], float(weights[1])
-            flows = pair(i, j)
-            motion = global_motion(engine, i, j, flows)
-            if motion is not None:  # one map moves the whole picture: followed at the frame's size
-                wa, va, wb, vb = motion.at_size((full_w, full_h), (width, height)).moved(big(i), big(j), at)
-            else:
-                wa, va, wb, vb = lpairs.moved_pair(big(i), big(j), at, _scaled(flows, width, height))
+        elif motion is not None:  # one map moves the whole picture: followed at the frame's size
+            at = float(weights[1])
+            wa, va, wb, vb = motion.at_size((full_w, full_h), (width, height)).moved(big(m[0]), big(m[1]), at)
             moved = [(wa, (1.0 - at) * va), (wb, at * vb)]
-        else:  # three captures around the frame: along the dense flows of the triangle's sides, scaled up
-            sides = {(x, y): _scaled(pair(m[x], m[y]), width, height) for x, y in ((0, 1), (0, 2), (1, 2))}
-            warped, seen = lpairs.moved([big(x) for x in m], weights,
-                                        lambda x, y: lpairs.pair_sides(sides[min(x, y), max(x, y)], 0 if x < y else 1))
-            moved = [(warped[x], weights[x] * seen[x]) for x in range(3)]
+        else:  # along the dense flows between the members, estimated at the working size and scaled up
+            warped, seen = lpairs.moved([big(x) for x in m[:count]], weights[:count], lambda x, y: side(x, y, m))
+            moved = [(warped[x], weights[x] * seen[x]) for x in range(count)]
         # each moved capture with the served frame's broad difference, where it agrees with it:
         # large = up(F) + sum_k share_k * agree_k * (C_k - up(F)) / sum_k share_k
         base = resize(frames[f][None], width, height)[0]
