@@ -261,11 +261,12 @@ def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images:
     frame (the chord's failures show it what a frame off the manifold looks like; fitted on the
     geodesic's and the fills' alone it came out too low on served geodesic frames at 128 px), except
     for a model that makes frames from the captures around them: there a chord's frame is made where
-    its code shows, not where the frame should show, and with it in the pool the camera move's
-    curve rejected 93-96% of its served geodesic frames at or above tau (26-35% without; 1-3% of
-    the accepted below tau, bench/RESULTS.md). The straight route's frames get a curve of their own on top: with the same signals a chord's frame
-    is faithful less often (it may cut across the manifold where no signal sees it), and the one
-    curve let a tenth of the photo window's long chord frames through below tau (bench/RESULTS.md)."""
+    its code shows, not where the frame should show, and with it in the pool the camera move's curve
+    rejected 93-96% of its served geodesic frames at or above tau (26-35% without; 1-3% of the
+    accepted below tau, bench/RESULTS.md). The straight route's frames get a curve of their own on
+    top: with the same signals a chord's frame is faithful less often (it may cut across the
+    manifold where no signal sees it), and the one curve let a tenth of the photo window's long
+    chord frames through below tau (bench/RESULTS.md)."""
     if not 0.0 < tau < 1.0:
         raise ValueError(f"tau: {tau!r} is outside (0, 1)")
     sig, ssim, kinds = calibration_frames(engine, holdout_params, holdout_images, seed=seed, refine=refine)
@@ -277,7 +278,7 @@ def calibrate_engine(engine: Engine, holdout_params: np.ndarray, holdout_images:
     # frames made from the captures around them: a geodesic's or a fill's frame is made where it should
     # show, a chord's where its code shows, so the chord's frames are another population and only
     # its own curve learns from them
-    pooled = ~straight if refine and engine.refine is not None and engine.refine.mode == "pair" else kind == kind
+    pooled = ~straight if refine and engine.refine is not None and engine.refine.mode == "pair" else np.ones_like(straight)
     model, main = _fit_kind(sig[pooled], outcome[pooled], names, tau, seed)
     line, chord = _fit_kind(sig[straight], outcome[straight], names, tau, seed)
     summary = replace(main, rows=int(len(outcome)), rows_by_kind={k: kinds.count(k) for k in sorted(set(kinds))},

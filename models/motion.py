@@ -54,10 +54,8 @@ class GlobalMotion:
     def at_size(self, src: tuple[int, int], dst: tuple[int, int]) -> "GlobalMotion":
         """The same motion in the pixel coordinates of pictures of (width, height) `dst` instead of
         `src` (a conjugation, under which the logarithm goes along)."""
-        t = scaling(src, dst)
-        inv = np.linalg.inv(t)
-        return GlobalMotion(h=t @ self.h @ inv, log=t @ self.log @ inv, matches=self.matches, error=self.error,
-                            flow_error=self.flow_error)
+        return GlobalMotion(h=to_size(self.h, src, dst), log=to_size(self.log, src, dst), matches=self.matches,
+                            error=self.error, flow_error=self.flow_error)
 
     def power(self, s: float) -> np.ndarray:
         return expm(float(s) * self.log)
@@ -133,16 +131,11 @@ def homography(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, int] | None:
     return best[0], int(best[1].sum())
 
 
-def scaling(src: tuple[int, int], dst: tuple[int, int]) -> np.ndarray:
-    """The map from the pixel coordinates of a picture of (width, height) `src` to those of `dst`
-    (pixel centres kept: x_dst = k (x_src + 1/2) - 1/2)."""
-    kx, ky = dst[0] / src[0], dst[1] / src[1]
-    return np.array([[kx, 0.0, 0.5 * kx - 0.5], [0.0, ky, 0.5 * ky - 0.5], [0.0, 0.0, 1.0]])
-
-
 def to_size(h: np.ndarray, src: tuple[int, int], dst: tuple[int, int]) -> np.ndarray:
-    """H in the pixel coordinates of a picture of (width, height) `src` rewritten for `dst`."""
-    t = scaling(src, dst)
+    """H in the pixel coordinates of a picture of (width, height) `src` rewritten for `dst` (pixel
+    centres kept: x_dst = k (x_src + 1/2) - 1/2)."""
+    kx, ky = dst[0] / src[0], dst[1] / src[1]
+    t = np.array([[kx, 0.0, 0.5 * kx - 0.5], [0.0, ky, 0.5 * ky - 0.5], [0.0, 0.0, 1.0]])
     return t @ h @ np.linalg.inv(t)
 
 
